@@ -1,0 +1,240 @@
+"""The public entry points. Everything the CLI does goes through these functions.
+
+>>> import oddling
+>>> bank = oddling.fit("good_parts/", "parts.bank")            # doctest: +SKIP
+>>> result = oddling.score("todays_batch/", bank)              # doctest: +SKIP
+>>> result.write_csv("scores.csv")                             # doctest: +SKIP
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .backbones import DEFAULT_BACKBONE, Backbone, load_backbone
+from .bank import Bank, check_compatible, load_bank, save_bank
+from .calibrate import cutoff_for_rate, min_calibration_size
+from .embed import OK, EmbeddedFiles, embed_files
+from .errors import OddlingError
+from .intake import IntakeError, discover
+from .knn import leave_one_out_scores
+from .results import ScoreRow, count_ok, json_number, rows_to_csv, sort_rows, write_text
+from .scoring import bank_cutoff, score_vectors
+
+CALIBRATION_METHOD = "leave-one-out"
+
+
+class OddlingWarning(UserWarning):
+    """Something the user should know but that does not stop the job."""
+
+
+@dataclass
+class RunOptions:
+    """How to run the backbone; shared by fit, score and evaluate."""
+
+    cache_dir: str | os.PathLike | None = None
+    batch_size: int = 32
+    workers: int | None = None
+    progress: bool = True
+
+
+def _check_rate(target_fpr: float) -> float:
+    if not 0.0 < float(target_fpr) < 1.0:
+        raise OddlingError(f"target_fpr must be in (0, 1), got: {target_fpr}")
+    return float(target_fpr)
+
+
+def _folder(path, what: str) -> Path:
+    folder = Path(path)
+    if not folder.is_dir():
+        raise OddlingError(f"{what} {folder} is not a folder")
+    return folder
+
+
+def _embed_folder(folder: Path, backbone: Backbone, options: RunOptions, desc: str,
+                  exclude: tuple[Path, ...] = ()) -> EmbeddedFiles:
+    try:
+        paths = discover(folder, exclude=exclude)
+    except IntakeError as exc:
+        raise OddlingError(exc.status) from exc
+    return embed_files(folder, paths, backbone, batch_size=options.batch_size,
+                       workers=options.workers, progress=options.progress, desc=desc)
+
+
+def warn_if_few_calibration(n: int, target_fpr: float) -> None:
+    needed = min_calibration_size(target_fpr)
+    if n < max(needed, round(1 / target_fpr)):
+        warnings.warn(
+            f"only {n} calibration images for a target false-alarm rate of {target_fpr}: "
+            f"about {round(1 / target_fpr)} or more are needed for the rate to mean much"
+            + ("; with so few, no image can be flagged at all" if n < needed else ""),
+            OddlingWarning,
+            stacklevel=3,
+        )
+
+
+def fit(
+    reference_dir: str | os.PathLike,
+    bank_path: str | os.PathLike | None = None,
+    *,
+    backbone: str = DEFAULT_BACKBONE,
+    k: int = 5,
+    target_fpr: float = 0.01,
+    force: bool = False,
+    options: RunOptions | None = None,
+) -> Bank:
+    """Build a reference bank from a folder of normal images (and save it if `bank_path` is given).
+
+    Calibration is leave-one-out over the bank: each reference is scored against the others
+    (copies of itself excluded), which uses every image both as reference and as calibration.
+    """
+    options = options or RunOptions()
+    reference_dir = _folder(reference_dir, "reference folder")
+    if k < 1:
+        raise OddlingError(f"k must be >= 1, got: {k}")
+    target_fpr = _check_rate(target_fpr)
+    if bank_path is not None and Path(bank_path).exists() and not force:
+        raise OddlingError(f"{bank_path} already exists; pass --force (force=True) to replace it")
+    net = load_backbone(backbone, options.cache_dir)
+    exclude = (Path(bank_path),) if bank_path is not None else ()
+    embedded = _embed_folder(reference_dir, net, options, "embedding references", exclude)
+    usable = embedded.ok_records
+    skipped = [{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK]
+    distinct = len({r.sha256 for r in usable})
+    if distinct < k + 1:
+        detail = f"; {len(skipped)} skipped (first: {skipped[0]['path']}: {skipped[0]['status']})" if skipped else ""
+        raise OddlingError(
+            f"{reference_dir} has {len(usable)} usable images ({distinct} distinct); at least k+1 = {k + 1} "
+            f"distinct images are needed{detail}"
+        )
+    groups = np.array([r.sha256 for r in usable])
+    calibration_scores = leave_one_out_scores(embedded.embeddings, groups, k)
+    warn_if_few_calibration(len(calibration_scores), target_fpr)
+    cutoff = cutoff_for_rate(calibration_scores, target_fpr)
+    bank = Bank(
+        backbone=net.fingerprint(),
+        mode="global",
+        k=k,
+        references=[{"path": r.path, "sha256": r.sha256} for r in usable],
+        embeddings=embedded.embeddings,
+        calibration_scores=calibration_scores,
+        calibration={
+            "method": CALIBRATION_METHOD,
+            "n": int(len(calibration_scores)),
+            "target_fpr": target_fpr,
+            "cutoff": json_number(cutoff, 12),
+            "rule": "flagged when score > cutoff, i.e. conformal p-value <= target_fpr",
+        },
+        reference_root=str(reference_dir.resolve()),
+        tool_version=__version__,
+        created=_dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
+        skipped=skipped,
+    )
+    if bank_path is not None:
+        save_bank(bank, bank_path, force=force)
+    return bank
+
+
+def _as_bank(bank: Bank | str | os.PathLike) -> Bank:
+    return bank if isinstance(bank, Bank) else load_bank(bank)
+
+
+def _load_matching_backbone(bank: Bank, backbone: str | None, options: RunOptions) -> Backbone:
+    if backbone is not None and backbone != bank.backbone["id"]:
+        raise OddlingError(
+            f"bank {bank.path or ''} was made with backbone {bank.backbone['id']!r}, not {backbone!r}; "
+            "scores from different backbones cannot be compared"
+        )
+    net = load_backbone(bank.backbone["id"], options.cache_dir)
+    check_compatible(bank, net.fingerprint())
+    return net
+
+
+@dataclass
+class ScoreResult:
+    """Scored files, sorted highest score first; unreadable files at the end with their status."""
+
+    rows: list[ScoreRow]
+    bank: Bank
+    target_fpr: float
+    cutoff: float
+    root: Path
+
+    @property
+    def scored(self) -> list[ScoreRow]:
+        return [r for r in self.rows if r.score is not None]
+
+    def summary(self) -> dict:
+        scores = [r.score for r in self.scored]
+        return {
+            "bank": str(self.bank.path) if self.bank.path else None,
+            "backbone": self.bank.backbone["id"],
+            "n_references": self.bank.size,
+            "k": self.bank.k,
+            "n_files": len(self.rows),
+            "n_scored": len(scores),
+            "n_skipped": len(self.rows) - len(scores),
+            "n_flagged": sum(bool(r.flagged) for r in self.rows),
+            "target_fpr": self.target_fpr,
+            "cutoff": json_number(self.cutoff),
+            "score_min": json_number(min(scores)) if scores else None,
+            "score_max": json_number(max(scores)) if scores else None,
+        }
+
+    def to_csv(self) -> str:
+        return rows_to_csv(self.rows)
+
+    def write_csv(self, path: str | os.PathLike, force: bool = False) -> Path:
+        return write_text(Path(path), self.to_csv(), force=force)
+
+
+def _score_embedded(bank: Bank, embedded: EmbeddedFiles, target_fpr: float | None) -> tuple[list[ScoreRow], float]:
+    vs = score_vectors(bank, embedded.embeddings, target_fpr)
+    rows = []
+    for rec in embedded.records:
+        row = ScoreRow(path=rec.path, status=rec.status, sha256=rec.sha256)
+        if rec.row is not None:
+            i = rec.row
+            row.score = float(vs.scores[i])
+            row.p_value = float(vs.p_values[i])
+            row.flagged = bool(vs.flagged[i])
+            row.nearest = [bank.references[j]["path"] for j in vs.neighbour_rows[i]]
+            row.nearest_distances = [float(d) for d in vs.neighbour_distances[i]]
+        rows.append(row)
+    return rows, vs.cutoff
+
+
+def score(
+    incoming_dir: str | os.PathLike,
+    bank: Bank | str | os.PathLike,
+    *,
+    target_fpr: float | None = None,
+    backbone: str | None = None,
+    options: RunOptions | None = None,
+) -> ScoreResult:
+    """Score every file under `incoming_dir` against the bank.
+
+    score = mean cosine distance to the bank's k nearest references (higher = more anomalous);
+    p_value = conformal p-value against the bank's calibration scores; flagged = p_value <=
+    target_fpr (the bank's rate unless overridden).
+    """
+    options = options or RunOptions()
+    incoming_dir = _folder(incoming_dir, "incoming folder")
+    bank = _as_bank(bank)
+    if target_fpr is not None:
+        target_fpr = _check_rate(target_fpr)
+        warn_if_few_calibration(len(bank.calibration_scores), target_fpr)
+    net = _load_matching_backbone(bank, backbone, options)
+    exclude = (bank.path,) if bank.path else ()
+    embedded = _embed_folder(incoming_dir, net, options, "scoring", exclude)
+    rows, cutoff = _score_embedded(bank, embedded, target_fpr)
+    rate, _ = bank_cutoff(bank, target_fpr)
+    return ScoreResult(sort_rows(rows), bank, rate, cutoff, incoming_dir)
+
+
+__all__ = ["fit", "score", "RunOptions", "ScoreResult", "OddlingWarning", "load_bank", "count_ok"]

@@ -1,0 +1,173 @@
+"""The `oddling` command: parse options, call the API, print. No business logic here."""
+from __future__ import annotations
+
+import functools
+import json
+import sys
+import warnings
+from pathlib import Path
+
+import click
+
+from . import __version__, api
+from .backbones import DEFAULT_BACKBONE, load_manifest
+from .errors import OddlingError
+
+EXIT_ATTENTION = 1   # the job ran, and something a flag asked about needs attention
+EXIT_BAD_INPUT = 2   # click's convention for usage errors; we use it for bad input too
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    click.echo(f"warning: {message}", err=True)
+
+
+def user_errors(func):
+    """Turn user mistakes into a one-line message and exit code 2 instead of a traceback."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        warnings.showwarning = _show_warning
+        try:
+            return func(*args, **kwargs)
+        except OddlingError as exc:
+            click.echo(f"Error: {exc}", err=True)
+            sys.exit(EXIT_BAD_INPUT)
+        except KeyboardInterrupt:
+            click.echo("Interrupted.", err=True)
+            sys.exit(130)
+
+    return wrapper
+
+
+def run_options(func):
+    """Options every embedding command shares."""
+    options = [
+        click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+                     help="Folder for weights and caches [default: $ODDLING_CACHE_DIR or the user cache folder]."),
+        click.option("--batch-size", type=click.IntRange(min=1), default=32, show_default=True,
+                     help="Images per network call."),
+        click.option("--workers", type=click.IntRange(min=1), default=None,
+                     help="Decoding threads [default: number of cores, at most 4]."),
+        click.option("--quiet", "-q", is_flag=True, help="No progress bar."),
+    ]
+    for option in reversed(options):
+        func = option(func)
+    return func
+
+
+def _options(cache_dir, batch_size, workers, quiet) -> api.RunOptions:
+    return api.RunOptions(cache_dir=cache_dir, batch_size=batch_size, workers=workers, progress=not quiet)
+
+
+def _print_json(data: dict) -> None:
+    click.echo(json.dumps(data, indent=2, sort_keys=True))
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"], "show_default": True})
+@click.version_option(__version__, prog_name="oddling")
+def main():
+    """Find the odd ones out in image collections.
+
+    Fit a bank from a folder of normal images, then score new folders against it.
+    Higher scores are more anomalous.
+    """
+
+
+@main.command()
+@click.argument("reference_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", required=True, type=click.Path(path_type=Path),
+              help="Folder to write the bank into.")
+@click.option("--backbone", default=DEFAULT_BACKBONE, show_default=True,
+              help="Backbone id from the manifest (see `oddling backbones list`).")
+@click.option("--k", type=click.IntRange(min=1), default=5, show_default=True,
+              help="Neighbours averaged into each score.")
+@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
+              show_default=True, help="False-alarm rate on normal images that sets the flag cutoff.")
+@click.option("--force", is_flag=True, help="Replace an existing bank.")
+@run_options
+@user_errors
+def fit(reference_dir, bank_path, backbone, k, target_fpr, force, **run):
+    """Build a reference bank from REFERENCE_DIR, a folder of known-normal images."""
+    bank = api.fit(reference_dir, bank_path, backbone=backbone, k=k, target_fpr=target_fpr,
+                   force=force, options=_options(**run))
+    cutoff = bank.calibration["cutoff"]
+    click.echo(
+        f"Bank written to {bank_path}: {bank.size} references, backbone {bank.backbone['id']}, k={bank.k}, "
+        f"cutoff {'none (too few images)' if cutoff is None else f'{cutoff:.4f}'} "
+        f"at target false-alarm rate {target_fpr}.", err=True)
+    if bank.skipped:
+        click.echo(f"{len(bank.skipped)} files skipped (listed in {bank_path}/bank.json):", err=True)
+        for item in bank.skipped[:10]:
+            click.echo(f"  {item['path']}: {item['status']}", err=True)
+
+
+@main.command()
+@click.argument("incoming_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Bank folder made by `oddling fit`.")
+@click.option("--out", "out_csv", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="CSV to write, one row per file, highest score first.")
+@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
+              help="Override the bank's false-alarm rate for this run.")
+@click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
+@click.option("--fail-on-flagged", is_flag=True, help="Exit 1 when any image is flagged.")
+@click.option("--force", is_flag=True, help="Overwrite an existing output file.")
+@run_options
+@user_errors
+def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, force, **run):
+    """Score every image in INCOMING_DIR against a bank."""
+    if out_csv.exists() and not force:
+        raise OddlingError(f"{out_csv} already exists; pass --force to overwrite it")
+    result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, options=_options(**run))
+    result.write_csv(out_csv, force=True)
+    summary = result.summary() | {"out": str(out_csv)}
+    if as_json:
+        _print_json(summary)
+    else:
+        click.echo(
+            f"Scored {summary['n_scored']} of {summary['n_files']} files "
+            f"({summary['n_skipped']} unreadable or skipped); {summary['n_flagged']} flagged at "
+            f"target false-alarm rate {summary['target_fpr']}. Results: {out_csv}", err=True)
+    if fail_on_flagged and summary["n_flagged"]:
+        sys.exit(EXIT_ATTENTION)
+
+
+@main.group()
+def backbones():
+    """List backbones and install their weight files."""
+
+
+@backbones.command("list")
+@click.option("--json", "as_json", is_flag=True, help="Print the list as JSON.")
+def backbones_list(as_json):
+    """Every backbone in the manifest."""
+    specs = load_manifest()
+    if as_json:
+        _print_json({sid: {"family": s.family, "embedding_dim": s.embedding_dim, "source": s.weights["source"],
+                           "licence": s.licence} for sid, s in specs.items()})
+        return
+    for sid, s in specs.items():
+        default = " (default)" if sid == DEFAULT_BACKBONE else ""
+        click.echo(f"{sid}{default}\n  {s.description}\n  dim {s.embedding_dim}, weights: {s.weights['source']}, "
+                   f"licence: {s.licence}")
+
+
+@backbones.command("import")
+@click.argument("backbone_id")
+@click.argument("weights_file", type=click.Path(exists=True, dir_okay=False, path_type=Path))
+@click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Cache folder [default: $ODDLING_CACHE_DIR or the user cache folder].")
+@click.option("--force", is_flag=True, help="Replace a file whose checksum differs from the pinned one.")
+@user_errors
+def backbones_import(backbone_id, weights_file, cache_dir, force):
+    """Copy WEIGHTS_FILE into the cache for BACKBONE_ID and verify (or pin) its SHA-256."""
+    from .backbones.manifest import get_spec
+    from .backbones.weights import import_weights
+    from .paths import cache_dir as resolve_cache
+
+    target, sha = import_weights(get_spec(backbone_id), weights_file, resolve_cache(cache_dir), force=force)
+    click.echo(f"Imported {weights_file} -> {target} (SHA-256 {sha})", err=True)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

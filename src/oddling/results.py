@@ -1,0 +1,85 @@
+"""Per-file results and their files: the scores CSV (sorted, every input accounted for) and the JSON summary."""
+from __future__ import annotations
+
+import csv
+import io
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .embed import OK
+
+SCORE_COLUMNS = ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "status"]
+
+
+@dataclass
+class ScoreRow:
+    path: str
+    status: str
+    sha256: str | None = None
+    score: float | None = None
+    p_value: float | None = None
+    flagged: bool | None = None
+    nearest: list[str] = field(default_factory=list)          # nearest references, nearest first
+    nearest_distances: list[float] = field(default_factory=list)
+    label: int | None = None     # evaluate only: 1 anomalous, 0 normal
+    kind: str | None = None      # evaluate only: anomaly kind (subfolder name) or "normal"
+
+
+def sort_rows(rows: list[ScoreRow]) -> list[ScoreRow]:
+    """Highest score first (ties by path); files without a score last, by path."""
+    scored = sorted((r for r in rows if r.score is not None), key=lambda r: (-r.score, r.path))
+    unscored = sorted((r for r in rows if r.score is None), key=lambda r: r.path)
+    return scored + unscored
+
+
+def _num(value: float | None, digits: int = 6) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return ""
+    return f"{value:.{digits}f}"
+
+
+def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
+    out = io.StringIO()
+    columns = SCORE_COLUMNS + (["label", "kind"] if with_labels else [])
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(columns)
+    for r in rows:
+        line = [
+            r.path,
+            _num(r.score),
+            _num(r.p_value),
+            "" if r.flagged is None else ("true" if r.flagged else "false"),
+            r.nearest[0] if r.nearest else "",
+            _num(r.nearest_distances[0]) if r.nearest_distances else "",
+            r.status,
+        ]
+        if with_labels:
+            line += ["" if r.label is None else ("anomalous" if r.label else "normal"), r.kind or ""]
+        writer.writerow(line)
+    return out.getvalue()
+
+
+def write_text(path: Path, text: str, force: bool = False) -> Path:
+    """Write a result file, refusing to replace an existing one unless asked."""
+    path = Path(path)
+    if path.exists() and not force:
+        from .errors import OddlingError
+
+        raise OddlingError(f"{path} already exists; pass --force to overwrite it")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.partial")
+    tmp.write_text(text, encoding="utf-8")
+    tmp.replace(path)
+    return path
+
+
+def json_number(value: float | None, digits: int = 6) -> float | None:
+    """Rounded float for JSON (stable bytes across runs), None for missing/inf/NaN."""
+    if value is None or not math.isfinite(value):
+        return None
+    return round(float(value), digits)
+
+
+def count_ok(rows: list[ScoreRow]) -> int:
+    return sum(r.status == OK for r in rows)

