@@ -11,7 +11,8 @@ import torch
 
 from oddling.backbones import load_backbone
 from oddling.backbones.manifest import get_spec
-from oddling.backbones.weights import expected_cache_path, file_sha256, import_weights, resolve_weights
+from oddling.backbones.weights import expected_cache_path, import_weights, resolve_weights
+from oddling.intake import sha256_file
 from oddling.errors import OddlingError
 
 CLIP_ID = "openclip-vit-b-32-laion2b"
@@ -71,7 +72,7 @@ def test_unknown_checksum_pinned_then_enforced(tmp_path, random_clip_file):
     spec = get_spec(CLIP_ID)
     import_weights(spec, path, tmp_path)
     _, sha = resolve_weights(spec, tmp_path)
-    assert sha == file_sha256(path)
+    assert sha == sha256_file(path)
     target = expected_cache_path(spec, tmp_path)
     target.write_bytes(target.read_bytes()[:-10] + b"0123456789")   # file changed after pinning
     with pytest.raises(OddlingError, match="SHA-256"):

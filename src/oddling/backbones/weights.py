@@ -7,7 +7,6 @@ pinned in <cache>/weights/pins.json and every later load must match it.
 """
 from __future__ import annotations
 
-import hashlib
 import importlib
 import json
 import os
@@ -17,17 +16,10 @@ import tempfile
 from pathlib import Path
 
 from ..errors import OddlingError
+from ..intake import sha256_file
 from .manifest import BackboneSpec
 
 PINS_FILE = "pins.json"
-
-
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as f:
-        for chunk in iter(lambda: f.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 def weights_folder(cache: Path, backbone_id: str) -> Path:
@@ -92,7 +84,7 @@ def resolve_weights(spec: BackboneSpec, cache: Path) -> tuple[Path, str]:
             raise OddlingError(missing_weights_message(spec, cache))
     else:
         raise OddlingError(f"backbone {spec.id!r}: unknown weights source {source!r} in the manifest")
-    actual = file_sha256(path)
+    actual = sha256_file(path)
     expected = expected_sha256(spec, cache)
     if expected is None:
         pin(spec, cache, actual)
@@ -123,7 +115,7 @@ def import_weights(spec: BackboneSpec, source_file: Path, cache: Path, force: bo
     """Copy a user-supplied weight file into the cache, verify or pin its checksum."""
     if spec.weights["source"] != "cache_file":
         raise OddlingError(f"backbone {spec.id!r} ships its weights in a package; nothing to import")
-    actual = file_sha256(source_file)
+    actual = sha256_file(source_file)
     expected = expected_sha256(spec, cache)
     if expected is not None and actual != expected and not force:
         raise OddlingError(
