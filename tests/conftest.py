@@ -19,6 +19,21 @@ def write_digit(array8x8: np.ndarray, path: Path) -> None:
     Image.fromarray(pixels, mode="L").resize((64, 64), Image.Resampling.NEAREST).save(path)
 
 
+@pytest.fixture(scope="session", autouse=True)
+def private_cache(tmp_path_factory):
+    """Tests never touch the user's cache folder: exports and pins go to a temporary one."""
+    import os
+
+    folder = tmp_path_factory.mktemp("cache")
+    old = os.environ.get("ODDLING_CACHE_DIR")
+    os.environ["ODDLING_CACHE_DIR"] = str(folder)
+    yield folder
+    if old is None:
+        os.environ.pop("ODDLING_CACHE_DIR")
+    else:
+        os.environ["ODDLING_CACHE_DIR"] = old
+
+
 @pytest.fixture(scope="session")
 def digits_folders(tmp_path_factory) -> dict:
     """scikit-learn's bundled UCI handwritten digits as PNG folders: reference/, incoming/ and test/<label>/."""

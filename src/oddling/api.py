@@ -8,6 +8,7 @@
 from __future__ import annotations
 
 import datetime as _dt
+import json
 import os
 import warnings
 from dataclasses import dataclass
@@ -38,6 +39,7 @@ class RunOptions:
     """How to run the backbone; shared by fit, score and evaluate."""
 
     cache_dir: str | os.PathLike | None = None
+    runtime: str = "auto"      # "auto" (ONNX Runtime when installed), "onnx" or "torch"
     batch_size: int = 32
     workers: int | None = None
     progress: bool = True
@@ -100,7 +102,7 @@ def fit(
     target_fpr = _check_rate(target_fpr)
     if bank_path is not None and Path(bank_path).exists() and not force:
         raise OddlingError(f"{bank_path} already exists; pass --force (force=True) to replace it")
-    net = load_backbone(backbone, options.cache_dir)
+    net = load_backbone(backbone, options.cache_dir, options.runtime)
     exclude = (Path(bank_path),) if bank_path is not None else ()
     embedded = _embed_folder(reference_dir, net, options, "embedding references", exclude)
     usable = embedded.ok_records
@@ -150,7 +152,7 @@ def _load_matching_backbone(bank: Bank, backbone: str | None, options: RunOption
             f"bank {bank.path or ''} was made with backbone {bank.backbone['id']!r}, not {backbone!r}; "
             "scores from different backbones cannot be compared"
         )
-    net = load_backbone(bank.backbone["id"], options.cache_dir)
+    net = load_backbone(bank.backbone["id"], options.cache_dir, options.runtime)
     check_compatible(bank, net.fingerprint())
     return net
 
@@ -237,4 +239,90 @@ def score(
     return ScoreResult(sort_rows(rows), bank, rate, cutoff, incoming_dir)
 
 
-__all__ = ["fit", "score", "RunOptions", "ScoreResult", "OddlingWarning", "load_bank", "count_ok"]
+@dataclass
+class EvaluationResult:
+    """Scores with their true labels, the metrics, and what could not be used."""
+
+    rows: list[ScoreRow]
+    metrics: dict
+    labels: np.ndarray     # of the labelled, scored rows, in `scored_labelled` order
+    scores: np.ndarray
+
+    @property
+    def scored_labelled(self) -> list[ScoreRow]:
+        return [r for r in self.rows if r.score is not None and r.label is not None]
+
+    def write(self, out_dir: str | os.PathLike, force: bool = False) -> dict[str, Path]:
+        """metrics.json, scores.csv, roc.png, pr.png in `out_dir`; existing files need force=True."""
+        from . import metrics as m
+        from .plots import plot_pr, plot_roc
+
+        out = Path(out_dir)
+        names = {"metrics": "metrics.json", "scores": "scores.csv", "roc": "roc.png", "pr": "pr.png"}
+        clash = [n for n in names.values() if (out / n).exists()]
+        if clash and not force:
+            raise OddlingError(f"{out} already holds {', '.join(clash)}; pass --force to overwrite")
+        out.mkdir(parents=True, exist_ok=True)
+        paths = {key: out / name for key, name in names.items()}
+        write_text(paths["metrics"], json.dumps(self.metrics, indent=2, sort_keys=True) + "\n", force=True)
+        write_text(paths["scores"], rows_to_csv(self.rows, with_labels=True), force=True)
+        fpr, tpr, _ = m.roc_curve(self.labels, self.scores)
+        plot_roc(fpr, tpr, self.metrics["auroc"], paths["roc"])
+        precision, recall, _ = m.precision_recall_curve(self.labels, self.scores)
+        plot_pr(precision, recall, self.metrics["average_precision"], float(self.labels.mean()), paths["pr"])
+        return paths
+
+
+def evaluate(
+    test_dir: str | os.PathLike,
+    bank: Bank | str | os.PathLike,
+    *,
+    labels_csv: str | os.PathLike | None = None,
+    normal_labels: tuple[str, ...] = ("normal",),
+    beta: float = 1.0,
+    target_fpr: float | None = None,
+    options: RunOptions | None = None,
+) -> EvaluationResult:
+    """Score a labelled test folder and measure how well scores separate normal from anomalous.
+
+    Labels come from subfolders (a folder named in `normal_labels` is normal, any other is an
+    anomaly kind) or from `labels_csv`. Unreadable and unlabelled files are listed, never counted.
+    """
+    from .labels import label_from_folder, read_labels_csv
+    from .metrics import evaluation_summary
+
+    options = options or RunOptions()
+    test_dir = _folder(test_dir, "test folder")
+    if beta <= 0:
+        raise OddlingError(f"beta must be > 0, got: {beta}")
+    bank = _as_bank(bank)
+    if target_fpr is not None:
+        target_fpr = _check_rate(target_fpr)
+    net = _load_matching_backbone(bank, None, options)
+    exclude = (bank.path,) if bank.path else ()
+    embedded = _embed_folder(test_dir, net, options, "evaluating", exclude)
+    rows, cutoff = _score_embedded(bank, embedded, target_fpr)
+    table = read_labels_csv(Path(labels_csv)) if labels_csv else None
+    for row in rows:
+        found = table.get(row.path) if table is not None else label_from_folder(row.path, normal_labels)
+        if found is not None:
+            row.label, row.kind = found
+    rows = sort_rows(rows)
+    used = [r for r in rows if r.score is not None and r.label is not None]
+    labels = np.array([r.label for r in used], dtype=np.int64)
+    scores = np.array([r.score for r in used], dtype=np.float64)
+    if not (labels == 0).any() or not (labels == 1).any():
+        raise OddlingError(
+            f"{test_dir} needs readable images of both classes; found {int((labels == 0).sum())} normal and "
+            f"{int((labels == 1).sum())} anomalous (normal folders: {', '.join(normal_labels)})")
+    summary = evaluation_summary(labels, scores, cutoff, kinds=[r.kind for r in used], beta=beta)
+    rate, _ = bank_cutoff(bank, target_fpr)
+    summary["bank"] = {"path": str(bank.path) if bank.path else None, "backbone": bank.backbone["id"],
+                       "k": bank.k, "n_references": bank.size, "target_fpr": rate}
+    summary["unreadable"] = [{"path": r.path, "status": r.status} for r in rows if r.score is None]
+    summary["unlabelled"] = [r.path for r in rows if r.score is not None and r.label is None]
+    return EvaluationResult(rows, summary, labels, scores)
+
+
+__all__ = ["fit", "score", "evaluate", "RunOptions", "ScoreResult", "EvaluationResult", "OddlingWarning",
+           "load_bank", "count_ok"]

@@ -10,7 +10,7 @@ from pathlib import Path
 import click
 
 from . import __version__, api
-from .backbones import DEFAULT_BACKBONE, load_manifest
+from .backbones import DEFAULT_BACKBONE, RUNTIMES, load_manifest
 from .errors import OddlingError
 
 EXIT_ATTENTION = 1   # the job ran, and something a flag asked about needs attention
@@ -44,6 +44,8 @@ def run_options(func):
     options = [
         click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
                      help="Folder for weights and caches [default: $ODDLING_CACHE_DIR or the user cache folder]."),
+        click.option("--runtime", type=click.Choice(RUNTIMES), default="auto", show_default=True,
+                     help="Inference runtime; auto = ONNX Runtime when installed, else PyTorch."),
         click.option("--batch-size", type=click.IntRange(min=1), default=32, show_default=True,
                      help="Images per network call."),
         click.option("--workers", type=click.IntRange(min=1), default=None,
@@ -55,8 +57,9 @@ def run_options(func):
     return func
 
 
-def _options(cache_dir, batch_size, workers, quiet) -> api.RunOptions:
-    return api.RunOptions(cache_dir=cache_dir, batch_size=batch_size, workers=workers, progress=not quiet)
+def _options(cache_dir, runtime, batch_size, workers, quiet) -> api.RunOptions:
+    return api.RunOptions(cache_dir=cache_dir, runtime=runtime, batch_size=batch_size, workers=workers,
+                          progress=not quiet)
 
 
 def _print_json(data: dict) -> None:
@@ -130,6 +133,75 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
             f"target false-alarm rate {summary['target_fpr']}. Results: {out_csv}", err=True)
     if fail_on_flagged and summary["n_flagged"]:
         sys.exit(EXIT_ATTENTION)
+
+
+@main.command()
+@click.argument("test_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Bank folder made by `oddling fit`.")
+@click.option("--out-dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Folder for metrics.json, scores.csv, roc.png, pr.png.")
+@click.option("--labels", "labels_csv", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
+              help="CSV with path,label (normal/anomaly or 0/1) instead of class subfolders.")
+@click.option("--normal-label", "normal_labels", multiple=True, default=("normal",), show_default=True,
+              help="Subfolder name that holds normal images (repeatable); every other subfolder is an anomaly kind.")
+@click.option("--beta", type=click.FloatRange(min=0, min_open=True), default=1.0, show_default=True,
+              help="F-beta weight for the best-cutoff search; beta > 1 weighs recall more.")
+@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
+              help="Override the bank's false-alarm rate for this run.")
+@click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
+@click.option("--force", is_flag=True, help="Overwrite earlier results in --out-dir.")
+@run_options
+@user_errors
+def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, force, **run):
+    """Measure the detector on TEST_DIR, a folder of labelled images."""
+    result = api.evaluate(test_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
+                          beta=beta, target_fpr=target_fpr, options=_options(**run))
+    paths = result.write(out_dir, force=force)
+    m = result.metrics
+    if as_json:
+        _print_json(m)
+    else:
+        c = m["at_cutoff"]
+        low, high = m["auroc_ci95"]
+        click.echo(
+            f"{m['n_normal']} normal, {m['n_anomalous']} anomalous images: AUROC {m['auroc']:.3f} "
+            f"(95% CI {low:.3f}-{high:.3f}), average precision {m['average_precision']:.3f}.\n"
+            f"At the bank's cutoff: precision {c['precision']:.3f}, recall {c['recall']:.3f}, "
+            f"false-alarm rate {c['fpr']:.3f}.\nResults in {paths['metrics'].parent}", err=True)
+        if m["unreadable"]:
+            click.echo(f"{len(m['unreadable'])} unreadable files listed in metrics.json (not counted).", err=True)
+
+
+@main.command()
+@click.argument("directory", type=click.Path(file_okay=False, path_type=Path), default=Path("oddling-demo"))
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the generated scenario.")
+@click.option("--force", is_flag=True, help="Replace an earlier demo in DIRECTORY.")
+@click.option("--json", "as_json", is_flag=True, help="Print the headline numbers as JSON.")
+@run_options
+@user_errors
+def demo(directory, seed, force, as_json, **run):
+    """Generate an invented tile-inspection scenario in DIRECTORY and run fit, score and evaluate on it."""
+    from .demo import run_demo
+
+    say = (lambda msg: click.echo(msg, err=True))
+    out = run_demo(directory, seed=seed, force=force, options=_options(**run), log=say)
+    if as_json:
+        _print_json({k: v for k, v in out.items() if k != "scene"})
+        return
+    low, high = out["auroc_ci95"]
+    c = out["at_cutoff"]
+    inc = out["incoming"]
+    click.echo(
+        f"\nDemo finished in {out['root']}\n"
+        f"  bank:              {out['bank']} ({out['n_references']} reference tiles)\n"
+        f"  incoming batch:    {inc['n_flagged']} of {inc['n_scored']} frames flagged -> {out['incoming_scores']}\n"
+        f"                     (the truth, for checking: {out['incoming_truth']})\n"
+        f"  labelled test set: AUROC {out['auroc']:.3f} (95% CI {low:.3f}-{high:.3f}), "
+        f"average precision {out['average_precision']:.3f}\n"
+        f"                     at the cutoff: precision {c['precision']:.3f}, recall {c['recall']:.3f}, "
+        f"false-alarm rate {c['fpr']:.3f}\n"
+        f"  plots and metrics: {Path(out['evaluation']['metrics']).parent}")
 
 
 @main.group()

@@ -13,7 +13,7 @@ import torch
 
 from ..errors import OddlingError
 from ..paths import cache_dir
-from . import efficientnet_lite, openclip
+from . import efficientnet_lite, onnx_runtime, openclip
 from .manifest import BackboneSpec, get_spec, load_manifest
 from .weights import resolve_weights
 
@@ -25,17 +25,30 @@ FAMILIES = {
 DEFAULT_BACKBONE = "efficientnet-lite0"
 
 
-class Backbone:
-    """A loaded network plus what identifies it: manifest spec and weight checksum."""
+RUNTIMES = ("auto", "onnx", "torch")
 
-    def __init__(self, spec: BackboneSpec, weights_sha256: str, network: torch.nn.Module):
+
+class Backbone:
+    """A loaded network plus what identifies it: manifest spec and weight checksum.
+
+    With an ONNX Runtime session the network is exported once into the cache, and the first
+    batch also runs in PyTorch to prove both agree.
+    """
+
+    def __init__(self, spec: BackboneSpec, weights_sha256: str, network: torch.nn.Module,
+                 onnx_session=None):
         self.spec = spec
         self.weights_sha256 = weights_sha256
         self.network = network
+        self.onnx = onnx_session
         self.channels_last = spec.family == "efficientnet_lite"
         if self.channels_last:
             # Depthwise convolutions run about twice as fast in this memory layout on CPU.
             self.network = self.network.to(memory_format=torch.channels_last)
+
+    @property
+    def runtime(self) -> str:
+        return "onnx" if self.onnx is not None else "torch"
 
     @property
     def id(self) -> str:
@@ -59,22 +72,44 @@ class Backbone:
         }
 
     @torch.inference_mode()
-    def embed(self, batch: np.ndarray) -> np.ndarray:
-        """(N, 3, H, W) preprocessed float32 -> (N, D) float32 L2-normalised embeddings."""
+    def torch_features(self, batch: np.ndarray) -> np.ndarray:
         x = torch.from_numpy(np.ascontiguousarray(batch, dtype=np.float32))
         if self.channels_last:
             x = x.contiguous(memory_format=torch.channels_last)
-        feats = self.network.features(x).float()
-        feats = torch.nn.functional.normalize(feats, dim=1)
-        return feats.numpy().astype(np.float32, copy=False)
+        return self.network.features(x).float().numpy()
+
+    def embed(self, batch: np.ndarray) -> np.ndarray:
+        """(N, 3, H, W) preprocessed float32 -> (N, D) float32 L2-normalised embeddings."""
+        if self.onnx is None:
+            feats = self.torch_features(batch)
+        else:
+            feats = self.onnx.features(batch)
+            if not self.onnx.verified:
+                self.onnx.verify(self.torch_features(batch), feats)
+        norms = np.linalg.norm(feats, axis=1, keepdims=True)
+        return (feats / np.maximum(norms, 1e-12)).astype(np.float32, copy=False)
 
 
-def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None = None) -> Backbone:
+def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None = None,
+                  runtime: str = "torch") -> Backbone:
+    """Load and verify a backbone. runtime "auto" uses ONNX Runtime when installed, else PyTorch."""
+    if runtime not in RUNTIMES:
+        raise OddlingError(f"runtime must be one of {', '.join(RUNTIMES)}, got: {runtime!r}")
     spec = get_spec(backbone_id)
     if spec.family not in FAMILIES:
         raise OddlingError(f"backbone {spec.id!r} has family {spec.family!r}, which this oddling cannot build")
-    path, sha = resolve_weights(spec, cache_dir(cache))
-    return Backbone(spec, sha, FAMILIES[spec.family](spec, path))
+    if runtime == "onnx" and not onnx_runtime.available():
+        raise OddlingError("runtime 'onnx' needs the onnxruntime package: pip install onnxruntime")
+    folder = cache_dir(cache)
+    path, sha = resolve_weights(spec, folder)
+    network = FAMILIES[spec.family](spec, path)
+    session = None
+    if runtime == "onnx" or (runtime == "auto" and onnx_runtime.available()):
+        onnx_file = onnx_runtime.export_path(folder, spec.id, sha, spec.preprocessing.crop)
+        if not onnx_file.is_file():
+            onnx_runtime.export(network, spec.preprocessing.crop, onnx_file)
+        session = onnx_runtime.OnnxSession(onnx_file)
+    return Backbone(spec, sha, network, session)
 
 
-__all__ = ["Backbone", "BackboneSpec", "DEFAULT_BACKBONE", "FAMILIES", "get_spec", "load_backbone", "load_manifest"]
+__all__ = ["RUNTIMES", "Backbone", "BackboneSpec", "DEFAULT_BACKBONE", "FAMILIES", "get_spec", "load_backbone", "load_manifest"]
