@@ -25,20 +25,7 @@ import numpy as np
 import torch
 from PIL import Image
 
-
-def make_jpegs(folder: Path, n: int, seed: int = 0) -> list[Path]:
-    """1152 x 864 (~1 MP) JPEGs with photo-like texture, about 350 KB each at quality 90."""
-    folder.mkdir(parents=True, exist_ok=True)
-    rng = np.random.default_rng(seed)
-    paths = []
-    for i in range(n):
-        low = rng.integers(0, 256, (27, 36, 3)).astype(np.uint8)
-        base = np.asarray(Image.fromarray(low).resize((1152, 864), Image.Resampling.BICUBIC), dtype=np.int16)
-        noise = rng.integers(-40, 41, base.shape, dtype=np.int16)
-        path = folder / f"img_{i:05d}.jpg"
-        Image.fromarray(np.clip(base + noise, 0, 255).astype(np.uint8)).save(path, quality=90)
-        paths.append(path)
-    return paths
+from oddling.bench import make_test_jpegs
 
 
 def plain_eager_loop(paths: list[Path], batch: int = 32) -> float:
@@ -143,7 +130,7 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp, tempfile.TemporaryDirectory() as cache:
         os.environ["ODDLING_CACHE_DIR"] = cache
         folder = Path(tmp) / "jpegs"
-        paths = make_jpegs(folder, args.images)
+        paths = make_test_jpegs(folder, args.images)
         size_kb = np.mean([p.stat().st_size for p in paths]) / 1024
         say(f"images: {args.images} JPEGs of 1152x864, mean {size_kb:.0f} KB")
 

@@ -204,6 +204,36 @@ def demo(directory, seed, force, as_json, **run):
         f"  plots and metrics: {Path(out['evaluation']['metrics']).parent}")
 
 
+@main.command()
+@click.option("--backbone", default=DEFAULT_BACKBONE, show_default=True, help="Backbone id to measure.")
+@click.option("--images", "n_images", type=click.IntRange(min=8), default=96, show_default=True,
+              help="Generated test images to measure on.")
+@click.option("--estimate", "estimate_for", type=click.IntRange(min=1), default=100000, show_default=True,
+              help="Print the expected time for this many images.")
+@click.option("--json", "as_json", is_flag=True, help="Print the measurements as JSON.")
+@run_options
+@user_errors
+def bench(backbone, n_images, estimate_for, as_json, cache_dir, runtime, batch_size, workers, quiet):
+    """Measure decode, embed and search speed on this machine."""
+    from .bench import estimate_seconds, measure
+
+    log = (lambda msg: None) if quiet else (lambda msg: click.echo(msg, err=True))
+    result = measure(backbone, runtime, n_images=n_images, batch_size=batch_size, workers=workers,
+                     cache_dir=cache_dir, log=log)
+    seconds = estimate_seconds(result, estimate_for)
+    if as_json:
+        _print_json(result | {"estimate_images": estimate_for, "estimate_seconds": round(seconds, 1)})
+        return
+    click.echo(
+        f"backbone {result['backbone']} on {result['runtime']}, {result['workers']} decode threads, "
+        f"batch {result['batch_size']}:\n"
+        f"  decode + preprocess  {result['decode_per_s']:8.1f} img/s\n"
+        f"  network              {result['embed_per_s']:8.1f} img/s\n"
+        f"  end to end           {result['end_to_end_per_s']:8.1f} img/s\n"
+        f"  kNN search           {result['search_queries_per_s']:8.0f} queries/s on a {result['bank_size']}-image bank\n"
+        f"about {seconds / 60:.1f} min for {estimate_for} images (1-MP JPEGs; larger files decode slower)")
+
+
 @main.group()
 def backbones():
     """List backbones and install their weight files."""
