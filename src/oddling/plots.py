@@ -1,0 +1,58 @@
+"""ROC and precision-recall figures as PNG files, with the chance level drawn for comparison."""
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")   # files only, never a window: works headless and in worker threads
+import matplotlib.pyplot as plt  # noqa: E402
+
+_DPI = 120
+
+
+def _value(x: float | None) -> str:
+    return "n/a" if x is None else f"{x:.3f}"
+
+
+def _save(fig, ax, title: str, path: str | os.PathLike) -> Path:
+    ax.set_xlim(0.0, 1.0)
+    ax.set_ylim(0.0, 1.02)
+    ax.set_aspect("equal")
+    ax.set_title(title)
+    ax.grid(True, alpha=0.3)
+    fig.tight_layout()
+    path = Path(path)
+    try:
+        fig.savefig(path, dpi=_DPI)
+    finally:
+        plt.close(fig)
+    return path
+
+
+def plot_roc(fpr, tpr, auc: float | None, path: str | os.PathLike, title: str = "ROC") -> Path:
+    """The ROC curve with the chance diagonal; the AUC in the legend."""
+    fig, ax = plt.subplots(figsize=(5, 5))
+    ax.plot(fpr, tpr, lw=2, label=f"detector (AUC = {_value(auc)})")
+    ax.plot([0, 1], [0, 1], ls="--", color="grey", lw=1, label="chance")
+    ax.set_xlabel("False positive rate")
+    ax.set_ylabel("True positive rate")
+    ax.legend(loc="lower right")
+    return _save(fig, ax, title, path)
+
+
+def plot_pr(precision, recall, average_precision: float | None, prevalence: float, path: str | os.PathLike,
+            title: str = "Precision-recall") -> Path:
+    """The precision-recall curve as steps (what average precision sums) and the chance level,
+    precision = prevalence (the share of anomalies)."""
+    fig, ax = plt.subplots(figsize=(5, 5))
+    ax.plot(recall, precision, lw=2, drawstyle="steps-post", label=f"detector (AP = {_value(average_precision)})")
+    ax.axhline(prevalence, ls="--", color="grey", lw=1, label=f"chance (prevalence {prevalence:.3f})")
+    ax.set_xlabel("Recall")
+    ax.set_ylabel("Precision")
+    ax.legend(loc="lower left")
+    return _save(fig, ax, title, path)
+
+
+__all__ = ["plot_pr", "plot_roc"]
