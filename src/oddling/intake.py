@@ -1,9 +1,8 @@
-"""Find input files and decode them safely to RGB; every file gets a status, none crashes the run."""
+"""Find input files and decode them safely to RGB: every file gets a status, and no file crashes the run."""
 from __future__ import annotations
 
 import hashlib
 import os
-import warnings
 from pathlib import Path
 from typing import Iterable
 
@@ -11,12 +10,19 @@ import numpy as np
 from PIL import Image, ImageOps, UnidentifiedImageError
 
 IMAGE_SUFFIXES = frozenset({".jpg", ".jpeg", ".png", ".bmp", ".tif", ".tiff", ".webp", ".gif"})
-MAX_PIXELS_DEFAULT = 120_000_000   # decompression-bomb guard: ~11k x 11k, far above any camera frame
+MAX_PIXELS_DEFAULT = 89_478_485     # decompression-bomb guard: Pillow's own default limit (~9.5k x 9.5k)
 BANK_MARKER = "bank.json"          # a folder holding this file is an oddling bank, never input
+
+# Only the decoders for the suffixes above: a file named .png that holds EPS or another rarely
+# used format is refused, not handed to Ghostscript or an obscure decoder. (Pillow's JPEG opener
+# also returns MPO, the multi-picture JPEG many cameras write as .jpg; draft mode works on both.)
+_FORMATS = ("JPEG", "PNG", "BMP", "TIFF", "WEBP", "GIF")
+_DRAFT_FORMATS = frozenset({"JPEG", "MPO"})
+_MESSAGE_CHARS = 120
 
 
 class IntakeError(Exception):
-    """A file that cannot be used; `status` is the short reason written into the results."""
+    """A file (or folder) that cannot be used; `status` is the short reason written into the results."""
 
     def __init__(self, status: str):
         super().__init__(status)
@@ -24,11 +30,11 @@ class IntakeError(Exception):
 
 
 def discover(root: Path, exclude: Iterable[Path] = ()) -> list[Path]:
-    """Every regular, non-hidden file under `root`, sorted by relative path.
+    """Every regular, non-hidden file under `root`, sorted by POSIX relative path.
 
     Non-image files are included on purpose: they get a row saying why they were skipped.
-    Hidden files and folders, excluded folders and bank folders are left out; symlinked
-    folders are not followed (no loops).
+    Hidden files and folders, folders in `exclude` and bank folders (holding bank.json) are
+    left out; `root` itself is always searched. Symlinked folders are not followed (no loops).
     """
     root = Path(root)
     if not root.is_dir():
@@ -37,21 +43,19 @@ def discover(root: Path, exclude: Iterable[Path] = ()) -> list[Path]:
     found: list[Path] = []
     for dirpath, dirnames, filenames in os.walk(root, followlinks=False):
         here = Path(dirpath)
-        keep = []
-        for name in sorted(dirnames):
-            sub = here / name
-            if name.startswith(".") or sub.resolve() in excluded or (sub / BANK_MARKER).is_file():
-                continue
-            keep.append(name)
-        dirnames[:] = keep
-        for name in filenames:
-            path = here / name
-            if not name.startswith(".") and path.is_file():
-                found.append(path)
+        dirnames[:] = [
+            name for name in dirnames
+            if not name.startswith(".")
+            and (here / name).resolve() not in excluded
+            and not (here / name / BANK_MARKER).is_file()
+        ]
+        found.extend(here / name for name in filenames
+                     if not name.startswith(".") and (here / name).is_file())
     return sorted(found, key=lambda p: p.relative_to(root).as_posix())
 
 
 def sha256_file(path: Path) -> str:
+    """Hex SHA-256 of the file's bytes, read in 1 MiB chunks so memory stays flat."""
     digest = hashlib.sha256()
     with open(path, "rb") as f:
         for chunk in iter(lambda: f.read(1 << 20), b""):
@@ -59,16 +63,35 @@ def sha256_file(path: Path) -> str:
     return digest.hexdigest()
 
 
-def _scale_to_uint8(values: np.ndarray) -> np.ndarray:
-    """Min-max stretch to 0..255 for integer or float data of unknown range."""
-    values = np.nan_to_num(values.astype(np.float64), nan=0.0, posinf=0.0, neginf=0.0)
-    low, high = float(values.min()), float(values.max())
-    if high <= low:
+def _short(exc: BaseException, path: Path | None = None) -> str:
+    """The first line of an exception's message, without the full path, capped in length."""
+    text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    if path is not None:
+        text = text.replace(f"{str(path)!r}", "").replace(str(path), path.name).strip()
+    text = text.split(", could be decompression bomb")[0]
+    return text if len(text) <= _MESSAGE_CHARS else text[:_MESSAGE_CHARS - 3] + "..."
+
+
+def _stretch_to_uint8(values: np.ndarray) -> np.ndarray:
+    """Min-max stretch of the finite values onto 0..255; NaN -> 0, +inf -> 255, -inf -> 0."""
+    values = values.astype(np.float64)
+    finite = np.isfinite(values)
+    if not finite.any():
         return np.zeros(values.shape, np.uint8)
-    return np.round((values - low) * (255.0 / (high - low))).astype(np.uint8)
+    low, high = float(values[finite].min()), float(values[finite].max())
+    if high <= low:   # a constant image carries no contrast to stretch
+        return np.zeros(values.shape, np.uint8)
+    clean = np.nan_to_num(values, nan=low, posinf=high, neginf=low)
+    grey = np.round((clean - low) * (255.0 / (high - low))).astype(np.uint8)
+    grey[np.isnan(values)] = 0
+    return grey
 
 
-def _white_background(image: Image.Image) -> Image.Image:
+def _grey_to_rgb(grey: np.ndarray) -> Image.Image:
+    return Image.fromarray(grey).convert("RGB")
+
+
+def _over_white(image: Image.Image) -> Image.Image:
     """Composite transparency over white: a cut-out object on a page, as a viewer shows it."""
     rgba = image.convert("RGBA")
     background = Image.new("RGBA", rgba.size, (255, 255, 255, 255))
@@ -76,42 +99,66 @@ def _white_background(image: Image.Image) -> Image.Image:
 
 
 def to_rgb(image: Image.Image) -> Image.Image:
+    """Any Pillow mode to 8-bit RGB; a new image unless `image` is already RGB."""
     mode = image.mode
     if mode == "RGB":
         return image
-    if mode in ("RGBA", "LA", "PA", "RGBa", "La") or (mode == "P" and "transparency" in image.info):
-        return _white_background(image)
+    if mode in ("RGBA", "RGBa", "LA", "La", "PA") or (mode == "P" and "transparency" in image.info):
+        # Palette transparency (tRNS) goes through RGBA too, so transparent entries become white.
+        return _over_white(image)
     if mode.startswith("I;16"):
-        # 16-bit sensors fill the whole range: map 0..65535 linearly onto 0..255.
+        # 16-bit data is taken to use the full range: 0..65535 maps linearly onto 0..255.
         values = np.asarray(image, dtype=np.float64)
-        return Image.fromarray(np.round(values / 257.0).astype(np.uint8)).convert("RGB")
+        return _grey_to_rgb(np.round(values / 257.0).astype(np.uint8))
     if mode == "I":
+        # 32-bit ints usually hold 8- or 16-bit samples (TIFF, PNG read as I); keep those scales.
+        # Anything else (negative, or beyond 16 bits) has no known range and is stretched.
         values = np.asarray(image, dtype=np.float64)
-        top = values.max() if values.size else 0
-        if values.min() >= 0 and top <= 255:       # 8-bit data stored as int32
-            grey = values.astype(np.uint8)
-        elif values.min() >= 0 and top <= 65535:   # 16-bit data stored as int32
-            grey = np.round(values / 257.0).astype(np.uint8)
-        else:
-            grey = _scale_to_uint8(values)
-        return Image.fromarray(grey).convert("RGB")
+        low, high = (float(values.min()), float(values.max())) if values.size else (0.0, 0.0)
+        if low >= 0 and high <= 255:
+            return _grey_to_rgb(values.astype(np.uint8))
+        if low >= 0 and high <= 65535:
+            return _grey_to_rgb(np.round(values / 257.0).astype(np.uint8))
+        return _grey_to_rgb(_stretch_to_uint8(values))
     if mode == "F":
+        # Floats in [0, 1] are a normalised image; any other range is stretched. NaN -> 0.
         values = np.asarray(image, dtype=np.float64)
-        finite = np.nan_to_num(values, nan=0.0)
-        if finite.size and finite.min() >= 0.0 and finite.max() <= 1.0:   # normalised float image
-            grey = np.round(finite * 255.0).astype(np.uint8)
-        else:
-            grey = _scale_to_uint8(values)
-        return Image.fromarray(grey).convert("RGB")
-    # "1", "L", "P", "CMYK", "YCbCr", "LAB", "HSV": Pillow's own conversion is the right one.
+        finite = values[np.isfinite(values)]
+        if finite.size and finite.min() >= 0.0 and finite.max() <= 1.0 and not np.isinf(values).any():
+            return _grey_to_rgb(np.round(np.nan_to_num(values, nan=0.0) * 255.0).astype(np.uint8))
+        return _grey_to_rgb(_stretch_to_uint8(values))
+    # "1", "L", "P", "CMYK", "YCbCr", "HSV": Pillow's own conversion is the right one
+    # (CMYK uses Pillow's naive inversion; an ICC-managed conversion would need the profile).
     return image.convert("RGB")
 
 
-def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXELS_DEFAULT) -> Image.Image:
-    """Decode `path` to a loaded RGB image, orientation applied; IntakeError says why not.
+def _decode(path: Path, min_side: int | None, max_pixels: int) -> Image.Image:
+    with Image.open(path, formats=_FORMATS) as opened:
+        width, height = opened.size
+        if width * height > max_pixels:   # from the header, before any pixel memory is allocated
+            raise IntakeError(f"unreadable: image too large ({width} x {height} pixels, limit {max_pixels})")
+        if min_side and opened.format in _DRAFT_FORMATS:
+            # Decode at the smallest DCT scale (1/2, 1/4, 1/8) keeping both sides >= min_side.
+            # A square request holds whichever way the EXIF orientation later turns the image.
+            opened.draft("RGB", (min_side, min_side))
+        opened.load()   # a freshly opened animation is at frame 0: only the first frame is decoded
+        try:
+            image = ImageOps.exif_transpose(opened)   # always a new image, independent of the file
+        except Exception:   # broken EXIF should not cost a decodable image: keep it unrotated
+            image = opened.copy()
+    try:
+        return to_rgb(image)
+    except ValueError as exc:   # e.g. a TIFF in LAB, which Pillow cannot convert to RGB
+        raise IntakeError(f"unreadable: cannot convert mode {image.mode} to RGB ({_short(exc)})") from exc
 
-    With `min_side`, JPEGs decode at the smallest DCT scale that keeps both sides >= min_side
-    (Pillow's draft mode): a 12-MP photo decodes about 8x faster when the network wants 256 px.
+
+def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXELS_DEFAULT) -> Image.Image:
+    """Decode `path` to a fully loaded RGB image, EXIF orientation applied; IntakeError says why not.
+
+    With `min_side`, JPEGs decode at reduced size (Pillow's draft mode) with both sides still
+    >= min_side: a 12-MP photo decodes several times faster when the network wants 256 px.
+    Truncated files fail (ImageFile.LOAD_TRUNCATED_IMAGES is left alone). The pixel count is
+    checked against `max_pixels` from the header, before any pixel is decoded.
     """
     path = Path(path)
     suffix = path.suffix.lower()
@@ -120,32 +167,22 @@ def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXE
     try:
         size = path.stat().st_size
     except OSError as exc:
-        raise IntakeError(f"unreadable: {exc.strerror or exc}") from exc
+        raise IntakeError(f"unreadable: {exc.strerror or _short(exc)}") from exc
     if size == 0:
         raise IntakeError("unreadable: empty file (0 bytes)")
-    with warnings.catch_warnings():
-        warnings.simplefilter("error", Image.DecompressionBombWarning)
-        try:
-            with Image.open(path) as image:
-                w, h = image.size
-                if w * h > max_pixels:
-                    raise IntakeError(f"unreadable: image too large ({w} x {h} pixels, limit {max_pixels})")
-                if min_side and image.format == "JPEG":
-                    image.draft("RGB", (min_side, min_side))
-                image.seek(0)   # first frame of an animation
-                image.load()
-                image = ImageOps.exif_transpose(image)
-                return to_rgb(image)
-        except IntakeError:
-            raise
-        except (Image.DecompressionBombError, Image.DecompressionBombWarning) as exc:
-            raise IntakeError(f"unreadable: image too large ({exc})") from exc
-        except UnidentifiedImageError as exc:
-            raise IntakeError(f"unreadable: not a recognised image ({suffix} file)") from exc
-        except (OSError, SyntaxError, ValueError, EOFError) as exc:
-            message = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-            if "truncated" in message.lower() or isinstance(exc, EOFError):
-                raise IntakeError(f"unreadable: truncated or corrupt image data ({message})") from exc
-            raise IntakeError(f"unreadable: corrupt image data ({message})") from exc
-        except Exception as exc:  # a decoder bug on a hostile file must not stop the run
-            raise IntakeError(f"unreadable: decoder failed ({type(exc).__name__}: {exc})") from exc
+    try:
+        return _decode(path, min_side, max_pixels)
+    except IntakeError:
+        raise
+    except Image.DecompressionBombError as exc:
+        raise IntakeError(f"unreadable: image too large ({_short(exc)})") from exc
+    except UnidentifiedImageError as exc:
+        raise IntakeError(f"unreadable: not a recognised image ({_short(exc, path)})") from exc
+    except OSError as exc:
+        if exc.errno is not None:   # the file system refused (permissions...), not the decoder
+            raise IntakeError(f"unreadable: {exc.strerror or _short(exc)}") from exc
+        raise IntakeError(f"unreadable: truncated or corrupt image data ({_short(exc)})") from exc
+    except (SyntaxError, EOFError, ValueError) as exc:   # Pillow's PNG and GIF readers use these
+        raise IntakeError(f"unreadable: truncated or corrupt image data ({_short(exc)})") from exc
+    except Exception as exc:   # a decoder bug on a hostile file must not stop the run
+        raise IntakeError(f"unreadable: decoder failed ({type(exc).__name__}: {_short(exc)})") from exc
