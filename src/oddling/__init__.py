@@ -5,9 +5,9 @@ detector on labelled data. Higher scores are always more anomalous.
 """
 __version__ = "0.1.0"
 
-from .api import OddlingWarning, RunOptions, ScoreResult, fit, score  # noqa: E402
+from .api import EvaluationResult, OddlingWarning, RunOptions, ScoreResult, evaluate, fit, score  # noqa: E402
 from .bank import Bank, load_bank  # noqa: E402
 from .errors import OddlingError  # noqa: E402
 
-__all__ = ["__version__", "Bank", "OddlingError", "OddlingWarning", "RunOptions", "ScoreResult",
-           "fit", "load_bank", "score"]
+__all__ = ["__version__", "Bank", "EvaluationResult", "OddlingError", "OddlingWarning", "RunOptions", "ScoreResult",
+           "evaluate", "fit", "load_bank", "score"]

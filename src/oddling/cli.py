@@ -62,6 +62,11 @@ def _options(cache_dir, runtime, batch_size, workers, quiet) -> api.RunOptions:
                           progress=not quiet)
 
 
+def _num(value, digits: int = 3) -> str:
+    """A metric for people: fixed decimals, or n/a where it is undefined (e.g. a CI from 1 sample)."""
+    return "n/a" if value is None else f"{value:.{digits}f}"
+
+
 def _print_json(data: dict) -> None:
     click.echo(json.dumps(data, indent=2, sort_keys=True))
 
@@ -96,7 +101,7 @@ def fit(reference_dir, bank_path, backbone, k, target_fpr, force, **run):
     cutoff = bank.calibration["cutoff"]
     click.echo(
         f"Bank written to {bank_path}: {bank.size} references, backbone {bank.backbone['id']}, k={bank.k}, "
-        f"cutoff {'none (too few images)' if cutoff is None else f'{cutoff:.4f}'} "
+        f"cutoff {'none (too few images)' if cutoff is None else _num(cutoff, 4)} "
         f"at target false-alarm rate {target_fpr}.", err=True)
     if bank.skipped:
         click.echo(f"{len(bank.skipped)} files skipped (listed in {bank_path}/bank.json):", err=True)
@@ -165,10 +170,10 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
         c = m["at_cutoff"]
         low, high = m["auroc_ci95"]
         click.echo(
-            f"{m['n_normal']} normal, {m['n_anomalous']} anomalous images: AUROC {m['auroc']:.3f} "
-            f"(95% CI {low:.3f}-{high:.3f}), average precision {m['average_precision']:.3f}.\n"
-            f"At the bank's cutoff: precision {c['precision']:.3f}, recall {c['recall']:.3f}, "
-            f"false-alarm rate {c['fpr']:.3f}.\nResults in {paths['metrics'].parent}", err=True)
+            f"{m['n_normal']} normal, {m['n_anomalous']} anomalous images: AUROC {_num(m['auroc'])} "
+            f"(95% CI {_num(low)}-{_num(high)}), average precision {_num(m['average_precision'])}.\n"
+            f"At the bank's cutoff: precision {_num(c['precision'])}, recall {_num(c['recall'])}, "
+            f"false-alarm rate {_num(c['fpr'])}.\nResults in {paths['metrics'].parent}", err=True)
         if m["unreadable"]:
             click.echo(f"{len(m['unreadable'])} unreadable files listed in metrics.json (not counted).", err=True)
 
@@ -197,10 +202,10 @@ def demo(directory, seed, force, as_json, **run):
         f"  bank:              {out['bank']} ({out['n_references']} reference tiles)\n"
         f"  incoming batch:    {inc['n_flagged']} of {inc['n_scored']} frames flagged -> {out['incoming_scores']}\n"
         f"                     (the truth, for checking: {out['incoming_truth']})\n"
-        f"  labelled test set: AUROC {out['auroc']:.3f} (95% CI {low:.3f}-{high:.3f}), "
-        f"average precision {out['average_precision']:.3f}\n"
-        f"                     at the cutoff: precision {c['precision']:.3f}, recall {c['recall']:.3f}, "
-        f"false-alarm rate {c['fpr']:.3f}\n"
+        f"  labelled test set: AUROC {_num(out['auroc'])} (95% CI {_num(low)}-{_num(high)}), "
+        f"average precision {_num(out['average_precision'])}\n"
+        f"                     at the cutoff: precision {_num(c['precision'])}, recall {_num(c['recall'])}, "
+        f"false-alarm rate {_num(c['fpr'])}\n"
         f"  plots and metrics: {Path(out['evaluation']['metrics']).parent}")
 
 
