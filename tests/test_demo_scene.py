@@ -42,7 +42,8 @@ def test_different_seed_gives_different_images(scene, tmp_path):
 def test_layout_and_counts_match_the_summary(scene):
     root, summary = scene
     expected_test = {"normal": 2, **{kind: 1 for kind in ANOMALY_KINDS}}
-    assert summary == {"reference": 3, "incoming": 10, "test": expected_test, "root": str(root)}
+    assert summary == {"root": str(root), "reference": 3, "incoming": 10, "incoming_anomalous": 7,
+                       "test": expected_test}
     assert sorted(p.name for p in root.iterdir()) == ["incoming", TRUTH_FILE, "reference", "test"]
     assert len(list((root / "reference").glob("*.jpg"))) == 3
     assert len(list((root / "incoming").glob("*.jpg"))) == 10
@@ -66,6 +67,8 @@ def test_incoming_names_do_not_reveal_the_label(scene):
     root, _ = scene
     names = sorted(p.name for p in (root / "incoming").iterdir())
     assert all(re.fullmatch(r"frame_\d{5}\.jpg", name) for name in names)
+    words = [*ANOMALY_KINDS, "normal", "anomal", "crack", "chip", "drip", "object", "blank", "overexposed"]
+    assert not [name for name in names if any(word in name.lower() for word in words)]
     with open(root / TRUTH_FILE, newline="") as f:
         labels = [r["label"] for r in sorted(csv.DictReader(f), key=lambda r: r["path"])]
     # Shuffled: the anomalies are not simply the last (or first) frames.

@@ -238,3 +238,10 @@ def test_sha256_file_matches_hashlib(tmp_path):
     path = touch(tmp_path / "blob.bin", data)
     # Outside reference: hashlib over the whole byte string at once.
     assert sha256_file(path) == hashlib.sha256(data).hexdigest()
+
+
+@pytest.mark.parametrize("mode, colour, key", [("L", 0, 0), ("RGB", (0, 0, 0), (0, 0, 0))])
+def test_transparent_colour_key_becomes_white(tmp_path, mode, colour, key):
+    path = tmp_path / f"key_{mode}.png"
+    Image.new(mode, (4, 4), colour).save(path, transparency=key)
+    assert load_rgb(path).getpixel((0, 0)) == (255, 255, 255)

@@ -21,9 +21,11 @@ from .backbones import DEFAULT_BACKBONE, Backbone, load_backbone
 from .bank import Bank, check_compatible, load_bank, save_bank
 from .calibrate import cutoff_for_rate, min_calibration_size
 from .embed import OK, EmbeddedFiles, embed_files
+from .embed_cache import EmbeddingCache
 from .errors import OddlingError
 from .intake import IntakeError, discover
 from .knn import leave_one_out_scores
+from .paths import cache_dir
 from .results import ScoreRow, count_ok, json_number, rows_to_csv, sort_rows, write_text
 from .scoring import bank_cutoff, score_vectors
 
@@ -43,6 +45,7 @@ class RunOptions:
     batch_size: int = 32
     workers: int | None = None
     progress: bool = True
+    use_cache: bool = True     # reuse and save embeddings in <cache>/embeddings
 
 
 def _check_rate(target_fpr: float) -> float:
@@ -64,8 +67,11 @@ def _embed_folder(folder: Path, backbone: Backbone, options: RunOptions, desc: s
         paths = discover(folder, exclude=exclude)
     except IntakeError as exc:
         raise OddlingError(exc.status) from exc
+    cache = None
+    if options.use_cache:
+        cache = EmbeddingCache.open(cache_dir(options.cache_dir), backbone.fingerprint(), backbone.runtime)
     return embed_files(folder, paths, backbone, batch_size=options.batch_size,
-                       workers=options.workers, progress=options.progress, desc=desc)
+                       workers=options.workers, progress=options.progress, desc=desc, cache=cache)
 
 
 def warn_if_few_calibration(n: int, target_fpr: float) -> None:

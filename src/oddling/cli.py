@@ -50,6 +50,7 @@ def run_options(func):
                      help="Images per network call."),
         click.option("--workers", type=click.IntRange(min=1), default=None,
                      help="Decoding threads [default: number of cores, at most 4]."),
+        click.option("--no-cache", is_flag=True, help="Neither reuse nor save embeddings in the cache folder."),
         click.option("--quiet", "-q", is_flag=True, help="No progress bar."),
     ]
     for option in reversed(options):
@@ -57,9 +58,9 @@ def run_options(func):
     return func
 
 
-def _options(cache_dir, runtime, batch_size, workers, quiet) -> api.RunOptions:
+def _options(cache_dir, runtime, batch_size, workers, no_cache, quiet) -> api.RunOptions:
     return api.RunOptions(cache_dir=cache_dir, runtime=runtime, batch_size=batch_size, workers=workers,
-                          progress=not quiet)
+                          progress=not quiet, use_cache=not no_cache)
 
 
 def _num(value, digits: int = 3) -> str:
@@ -218,7 +219,7 @@ def demo(directory, seed, force, as_json, **run):
 @click.option("--json", "as_json", is_flag=True, help="Print the measurements as JSON.")
 @run_options
 @user_errors
-def bench(backbone, n_images, estimate_for, as_json, cache_dir, runtime, batch_size, workers, quiet):
+def bench(backbone, n_images, estimate_for, as_json, cache_dir, runtime, batch_size, workers, no_cache, quiet):
     """Measure decode, embed and search speed on this machine."""
     from .bench import estimate_seconds, measure
 

@@ -27,7 +27,7 @@ GLAZES = ((0.92, 0.88, 0.78),   # cream
           (0.75, 0.84, 0.91))   # pale blue
 _BISCUIT = (0.80, 0.69, 0.56)   # unglazed ceramic body, seen where a corner broke off
 _STEEL = (0.60, 0.62, 0.66)
-_WOOD = (0.58, 0.40, 0.22)
+_WOOD = (0.66, 0.50, 0.31)
 
 # Seed streams: each image's randomness depends only on (seed, stream, ...), not on the counts
 # of the other folders, so enlarging one folder leaves the others' files unchanged.
@@ -107,7 +107,8 @@ def generate_scene(root: Path, seed: int = 0, counts: SceneCounts = SceneCounts(
     Refuses with FileExistsError if `root` exists and is not an empty folder; the caller clears it.
     The same seed, counts and size give byte-identical files.
 
-    Returns ``{"reference": n, "incoming": n, "test": {"normal": n, kind: n, ...}, "root": str}``.
+    Returns ``{"root": str, "reference": n, "incoming": n, "incoming_anomalous": n,
+    "test": {"normal": n, kind: n, ...}}``.
     """
     root = Path(root)
     _check_counts(counts)
@@ -150,8 +151,8 @@ def generate_scene(root: Path, seed: int = 0, counts: SceneCounts = SceneCounts(
         for i in range(n):
             write(render_tile(_image_rng(seed, _TEST, k, i), size, None if kind == NORMAL else kind),
                   out / f"tile_{i:05d}.jpg")
-    return {"reference": counts.reference, "incoming": len(incoming_kinds), "test": test,
-            "root": str(root)}
+    return {"root": str(root), "reference": counts.reference, "incoming": len(incoming_kinds),
+            "incoming_anomalous": counts.incoming_anomalous, "test": test}
 
 
 # ---------------------------------------------------------------------------------------------
@@ -425,9 +426,14 @@ def _glaze_drip(rng, pose: _Pose, size: int, tile: np.ndarray, glaze: np.ndarray
     y0, y1 = int(max(py.min() - pad, 0)), int(min(py.max() + pad, size))
     x, y = _grid(size)
     wx, wy = x[y0:y1, x0:x1], y[y0:y1, x0:x1]
+    # Tapered capsules along the run: a union of discs would leave creases that the relief
+    # shading turns into ridges (a caterpillar, not a drip).
     sdf = np.full(wx.shape, np.inf, np.float32)
-    for cx, cy, r in zip(px, py, radii):
-        sdf = np.minimum(sdf, np.hypot(wx - cx, wy - cy) - r)
+    for j in range(len(t) - 1):
+        ax, ay, dx, dy = px[j], py[j], px[j + 1] - px[j], py[j + 1] - py[j]
+        s = np.clip(((wx - ax) * dx + (wy - ay) * dy) / (dx * dx + dy * dy), 0, 1)
+        r = radii[j] + (radii[j + 1] - radii[j]) * s
+        sdf = np.minimum(sdf, np.hypot(wx - ax - s * dx, wy - ay - s * dy) - r)
     cover = _coverage(sdf)
     dome = np.sqrt(np.clip(-sdf / (0.8 * r_head), 0, 1))
     gy, gx = np.gradient(dome)
@@ -454,7 +460,7 @@ def _foreign_object(rng, pose: _Pose, size: int, image: np.ndarray, light: np.nd
     if rng.random() < 0.5:
         cover, colour = _bolt(rng, a, b, rng.uniform(0.16, 0.22) * side)
     else:
-        cover, colour = _wood_chip(rng, a, b, rng.uniform(0.14, 0.22) * side)
+        cover, colour = _wood_chip(rng, a, b, rng.uniform(0.18, 0.28) * side)
     offset = 3 * size / 320
     shadow = _blur_mask(_shift(cover, -light[0] * offset, -light[1] * offset), 1.5 * size / 320)
     image = image * (1 - 0.45 * shadow)[..., None]
@@ -483,16 +489,20 @@ def _bolt(rng, a, b, length):
 
 
 def _wood_chip(rng, a, b, length):
-    """An irregular splinter, longer than wide, with grain running along it."""
-    width = length * rng.uniform(0.25, 0.4)
-    rho = np.hypot(a / (length / 2), b / (width / 2))
-    phi = np.arctan2(b, a)
-    k = np.arange(2, 6)
-    wobble = (rng.normal(0, 0.12, len(k)) / k * 2)[:, None, None]
-    phases = rng.uniform(0, 2 * np.pi, len(k))[:, None, None]
-    edge = 1 + np.sum(wobble * np.sin(k[:, None, None] * phi + phases), 0)
-    cover = _coverage((rho - edge) * width / 2)
-    grain = 1 + 0.12 * np.sin(2 * np.pi * (b + 1.5 * np.sin(a / (0.15 * length))) / (0.12 * width))
+    """A splinter: long and narrow, pointed at one end, ragged edges, grain running along it."""
+    width = length * rng.uniform(0.16, 0.26)
+    s = np.clip(2 * a / length, -1.5, 1.5)                      # -1 blunt end .. 1 point
+    taper = np.where(s < 0, 1 - rng.uniform(0.2, 0.5) * s ** 2, 1 - np.abs(s) ** rng.uniform(1.0, 1.6))
+    k = np.arange(3, 9)
+    ragged = np.sum((rng.normal(0, 0.06, len(k)) / np.sqrt(k))[:, None, None]
+                    * np.sin(np.pi * k[:, None, None] * s + rng.uniform(0, 2 * np.pi, len(k))[:, None, None]),
+                    0)
+    half_width = np.where(np.abs(s) <= 1, width / 2 * np.clip(taper + ragged, 0, None), -1.0)
+    cover = _coverage(np.abs(b) - half_width)
+    wave = rng.uniform(0, 2 * np.pi)
+    # A few streaks across the width only: finer ones alias into a pattern across the grain.
+    grain = 1 + 0.12 * np.sin(2 * np.pi * (b + 0.1 * width * np.sin(3 * s + wave)) / (0.45 * width))
     tint = np.array(_WOOD, np.float32) * (1 + rng.normal(0, 0.08)) + rng.normal(0, 0.02, 3)
-    shade = grain * (1 - 0.25 * np.clip(rho, 0, 1) ** 2)
+    n = np.clip(b / (width / 2), -1, 1)
+    shade = grain * (0.8 + 0.25 * np.sqrt(1 - n ** 2) - 0.1 * n)   # rounded across, lit from one side
     return cover, shade[..., None] * tint.astype(np.float32)

@@ -101,11 +101,12 @@ def _over_white(image: Image.Image) -> Image.Image:
 def to_rgb(image: Image.Image) -> Image.Image:
     """Any Pillow mode to 8-bit RGB; a new image unless `image` is already RGB."""
     mode = image.mode
+    if mode in ("RGBA", "RGBa", "LA", "La", "PA") or (
+            mode in ("P", "L", "RGB") and "transparency" in image.info):
+        # A transparent colour (PNG tRNS) goes through RGBA too, so transparent pixels become white.
+        return _over_white(image)
     if mode == "RGB":
         return image
-    if mode in ("RGBA", "RGBa", "LA", "La", "PA") or (mode == "P" and "transparency" in image.info):
-        # Palette transparency (tRNS) goes through RGBA too, so transparent entries become white.
-        return _over_white(image)
     if mode.startswith("I;16"):
         # 16-bit data is taken to use the full range: 0..65535 maps linearly onto 0..255.
         values = np.asarray(image, dtype=np.float64)
