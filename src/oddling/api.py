@@ -86,6 +86,20 @@ def warn_if_few_calibration(n: int, target_fpr: float) -> None:
         )
 
 
+def calibrate_references(embeddings: np.ndarray, hashes: list[str], k: int,
+                         target_fpr: float) -> tuple[np.ndarray, dict]:
+    """Leave-one-out calibration scores of the references and the cutoff they give."""
+    scores = leave_one_out_scores(embeddings, np.array(hashes), k)
+    warn_if_few_calibration(len(scores), target_fpr)
+    return scores, {
+        "method": CALIBRATION_METHOD,
+        "n": int(len(scores)),
+        "target_fpr": target_fpr,
+        "cutoff": json_number(cutoff_for_rate(scores, target_fpr), 12),
+        "rule": "flagged when score > cutoff, i.e. conformal p-value <= target_fpr",
+    }
+
+
 def fit(
     reference_dir: str | os.PathLike,
     bank_path: str | os.PathLike | None = None,
@@ -120,10 +134,8 @@ def fit(
             f"{reference_dir} has {len(usable)} usable images ({distinct} distinct); at least k+1 = {k + 1} "
             f"distinct images are needed{detail}"
         )
-    groups = np.array([r.sha256 for r in usable])
-    calibration_scores = leave_one_out_scores(embedded.embeddings, groups, k)
-    warn_if_few_calibration(len(calibration_scores), target_fpr)
-    cutoff = cutoff_for_rate(calibration_scores, target_fpr)
+    calibration_scores, calibration = calibrate_references(
+        embedded.embeddings, [r.sha256 for r in usable], k, target_fpr)
     bank = Bank(
         backbone=net.fingerprint(),
         mode="global",
@@ -131,13 +143,7 @@ def fit(
         references=[{"path": r.path, "sha256": r.sha256} for r in usable],
         embeddings=embedded.embeddings,
         calibration_scores=calibration_scores,
-        calibration={
-            "method": CALIBRATION_METHOD,
-            "n": int(len(calibration_scores)),
-            "target_fpr": target_fpr,
-            "cutoff": json_number(cutoff, 12),
-            "rule": "flagged when score > cutoff, i.e. conformal p-value <= target_fpr",
-        },
+        calibration=calibration,
         reference_root=str(reference_dir.resolve()),
         tool_version=__version__,
         created=_dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),

@@ -21,6 +21,10 @@ def _check_rate(target_fpr: float) -> float:
 
 
 def conformal_p_values(calibration_scores: np.ndarray, scores: np.ndarray) -> np.ndarray:
+    """(1 + #{c >= s}) / (n + 1) for each score s; a tied calibration score counts against s.
+
+    Small p = more anomalous than the calibration images. NaN scores get NaN.
+    """
     cal = np.sort(np.asarray(calibration_scores, dtype=np.float64))
     s = np.asarray(scores, dtype=np.float64)
     at_least = len(cal) - np.searchsorted(cal, s, side="left")   # #{c >= s}
@@ -49,11 +53,13 @@ def cutoff_for_rate(calibration_scores: np.ndarray, target_fpr: float) -> float:
 
 
 def min_calibration_size(target_fpr: float) -> int:
-    """Smallest n with a*(n+1) >= 1, i.e. where the most extreme score can be flagged."""
+    """Smallest n with a*(n+1) >= 1, i.e. m >= 0: n = ceil(1/a) - 1, where only a score above
+    every calibration score can be flagged."""
     return max(1, math.ceil(1.0 / _check_rate(target_fpr) - _EPS) - 1)
 
 
 def flag(scores: np.ndarray, cutoff: float) -> np.ndarray:
+    """scores > cutoff, as booleans; a NaN score is never flagged."""
     s = np.asarray(scores, dtype=np.float64)
     with np.errstate(invalid="ignore"):
         return np.where(np.isnan(s), False, s > cutoff)

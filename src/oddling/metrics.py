@@ -17,7 +17,7 @@ from scipy.stats import norm, rankdata
 
 from .results import json_number
 
-CI_METHOD = "DeLong et al. 1988 (normal approximation)"
+CI_METHOD = "DeLong (1988), normal approximation"
 _TPR_AT_FPR_RATES = (0.01, 0.05)
 
 
@@ -88,7 +88,8 @@ def roc_curve(labels, scores) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 def _auroc(y, s) -> float:
     fpr, tpr, _ = _roc(y, s)
-    return float(np.trapezoid(tpr, fpr))
+    # trapezoids written out: np.trapz is gone in NumPy 2 and np.trapezoid absent before it
+    return float(np.sum(np.diff(fpr) * (tpr[1:] + tpr[:-1])) / 2.0)
 
 
 def auroc(labels, scores) -> float:
