@@ -40,4 +40,4 @@ def test_same_inputs_give_byte_identical_csv(digits_folders, digits_bank, tmp_pa
     b = oddling.score(digits_folders["incoming"], reloaded, options=opts).write_csv(tmp_path / "b.csv")
     assert a.read_bytes() == b.read_bytes()
     header = next(csv.reader(a.open()))
-    assert header[:7] == ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "status"]
+    assert header == ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "health", "status"]

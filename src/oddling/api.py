@@ -23,6 +23,7 @@ from .calibrate import cutoff_for_rate, min_calibration_size
 from .embed import OK, EmbeddedFiles, embed_files
 from .embed_cache import EmbeddingCache
 from .errors import OddlingError
+from .health import STATS, fit_fences, health_findings, health_text
 from .intake import IntakeError, discover
 from .knn import leave_one_out_scores
 from .paths import cache_dir
@@ -67,10 +68,14 @@ def _embed_folder(folder: Path, backbone: Backbone, options: RunOptions, desc: s
         paths = discover(folder, exclude=exclude)
     except IntakeError as exc:
         raise OddlingError(exc.status) from exc
+    return _embed_paths(folder, paths, backbone, options, desc)
+
+
+def _embed_paths(base: Path, paths: list[Path], backbone: Backbone, options: RunOptions, desc: str) -> EmbeddedFiles:
     cache = None
     if options.use_cache:
         cache = EmbeddingCache.open(cache_dir(options.cache_dir), backbone.fingerprint(), backbone.runtime)
-    return embed_files(folder, paths, backbone, batch_size=options.batch_size,
+    return embed_files(base, paths, backbone, batch_size=options.batch_size,
                        workers=options.workers, progress=options.progress, desc=desc, cache=cache)
 
 
@@ -84,6 +89,11 @@ def warn_if_few_calibration(n: int, target_fpr: float) -> None:
             OddlingWarning,
             stacklevel=3,
         )
+
+
+def fences_from_table(table: np.ndarray) -> dict:
+    """Tukey fences of the references' image statistics (rows in health.STATS order)."""
+    return fit_fences([dict(zip(STATS, row)) for row in table.tolist()])
 
 
 def calibrate_references(embeddings: np.ndarray, hashes: list[str], k: int,
@@ -137,6 +147,8 @@ def fit(
     calibration_scores, calibration = calibrate_references(
         embedded.embeddings, [r.sha256 for r in usable], k, target_fpr)
     bank = Bank(
+        health_stats=embedded.health,
+        health_fences=fences_from_table(embedded.health),
         backbone=net.fingerprint(),
         mode="global",
         k=k,
@@ -214,6 +226,7 @@ def _score_embedded(bank: Bank, embedded: EmbeddedFiles, target_fpr: float | Non
         row = ScoreRow(path=rec.path, status=rec.status, sha256=rec.sha256)
         if rec.row is not None:
             i = rec.row
+            row.health = health_text(health_findings(embedded.health_of(rec), bank.health_fences))
             row.score = float(vs.scores[i])
             row.p_value = float(vs.p_values[i])
             row.flagged = bool(vs.flagged[i])
@@ -336,5 +349,119 @@ def evaluate(
     return EvaluationResult(rows, summary, labels, scores)
 
 
-__all__ = ["fit", "score", "evaluate", "RunOptions", "ScoreResult", "EvaluationResult", "OddlingWarning",
-           "load_bank", "count_ok"]
+
+
+def _read_decisions(csv_path: Path, root: Path | None) -> list[Path]:
+    """Files marked normal in a decisions CSV (path,decision) exported from the review report."""
+    import csv
+
+    with open(csv_path, newline="", encoding="utf-8-sig") as f:
+        reader = csv.DictReader(f)
+        if not reader.fieldnames or not {"path", "decision"} <= set(reader.fieldnames):
+            raise OddlingError(f"{csv_path} must have columns path,decision (got {reader.fieldnames})")
+        rows = list(reader)
+    base = root if root is not None else csv_path.parent
+    files = []
+    for row in rows:
+        if row["decision"].strip().lower() != "normal":
+            continue
+        path = Path(row["path"])
+        files.append(path if path.is_absolute() else base / path)
+    missing = [str(p) for p in files if not p.is_file()]
+    if missing:
+        raise OddlingError(
+            f"{len(missing)} files marked normal in {csv_path} were not found (first: {missing[0]}); "
+            "pass --root with the folder that was scored")
+    return files
+
+
+def _bank_relative(path: Path, root: Path) -> str:
+    """Reference paths stay relative to the bank's reference folder where they can; else absolute."""
+    resolved = path.resolve()
+    try:
+        return resolved.relative_to(root).as_posix()
+    except ValueError:
+        return resolved.as_posix()
+
+
+def bank_add(
+    bank_path: str | os.PathLike,
+    source: str | os.PathLike,
+    *,
+    root: str | os.PathLike | None = None,
+    options: RunOptions | None = None,
+) -> dict:
+    """Add images to a bank: a folder (every image in it) or a decisions CSV (rows marked normal).
+
+    Only files whose content is not in the bank yet are embedded; calibration is recomputed; the
+    bank is replaced atomically (the old one stays in place until the new one is complete).
+    """
+    options = options or RunOptions()
+    bank = load_bank(bank_path)
+    source = Path(source)
+    net = _load_matching_backbone(bank, None, options)
+    if source.is_dir():
+        base, paths = source, discover(source, exclude=(Path(bank_path),))
+    elif source.is_file() and source.suffix.lower() == ".csv":
+        paths = _read_decisions(source, Path(root) if root else None)
+        base = Path(os.path.commonpath([p.resolve().parent for p in paths])) if paths else source.parent
+        paths = [p.resolve() for p in paths]
+    else:
+        raise OddlingError(f"{source} is neither a folder nor a decisions CSV")
+    known = {r["sha256"] for r in bank.references}
+    embedded = _embed_paths(base, paths, net, options, "embedding new references")
+    ref_root = Path(bank.reference_root)
+    added, duplicates = [], 0
+    vectors, stats = [bank.embeddings], [bank.health_stats]
+    for rec in embedded.ok_records:
+        if rec.sha256 in known:
+            duplicates += 1
+            continue
+        known.add(rec.sha256)
+        added.append({"path": _bank_relative(base / rec.path, ref_root), "sha256": rec.sha256})
+        vectors.append(embedded.embeddings[rec.row:rec.row + 1])
+        stats.append(embedded.health[rec.row:rec.row + 1])
+    skipped = [{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK]
+    if added:
+        bank.references = bank.references + added
+        bank.embeddings = np.concatenate(vectors).astype(np.float32)
+        bank.health_stats = np.concatenate(stats)
+        bank.health_fences = fences_from_table(bank.health_stats)
+        bank.calibration_scores, bank.calibration = calibrate_references(
+            bank.embeddings, [r["sha256"] for r in bank.references], bank.k, bank.calibration["target_fpr"])
+        save_bank(bank, bank_path, force=True)
+    return {"added": len(added), "already_in_bank": duplicates, "skipped": skipped, "n_references": bank.size}
+
+
+def bank_remove(bank_path: str | os.PathLike, paths: list[str]) -> dict:
+    """Remove references by their bank path (as `bank info` / `audit` print them); recalibrate."""
+    bank = load_bank(bank_path)
+    wanted = set(paths)
+    keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
+    found = {bank.references[i]["path"] for i in range(bank.size)} & wanted
+    not_found = sorted(wanted - found)
+    distinct = len({bank.references[i]["sha256"] for i in keep})
+    if distinct < bank.k + 1:
+        raise OddlingError(f"removing these would leave {distinct} distinct references; k={bank.k} needs "
+                           f"at least {bank.k + 1}")
+    if found:
+        bank.references = [bank.references[i] for i in keep]
+        bank.embeddings = bank.embeddings[keep]
+        bank.health_stats = bank.health_stats[keep]
+        bank.health_fences = fences_from_table(bank.health_stats)
+        bank.calibration_scores, bank.calibration = calibrate_references(
+            bank.embeddings, [r["sha256"] for r in bank.references], bank.k, bank.calibration["target_fpr"])
+        save_bank(bank, bank_path, force=True)
+    return {"removed": len(found), "not_found": not_found, "n_references": bank.size}
+
+
+def bank_info(bank_path: str | os.PathLike) -> dict:
+    bank = load_bank(bank_path)
+    meta = bank.metadata()
+    return {key: meta[key] for key in ("format_version", "tool_version", "created", "backbone", "mode", "k",
+                                       "calibration", "reference_root", "n_references")} | {
+        "n_skipped": len(bank.skipped), "path": str(bank.path)}
+
+
+__all__ = ["fit", "score", "evaluate", "bank_add", "bank_remove", "bank_info", "RunOptions", "ScoreResult",
+           "EvaluationResult", "OddlingWarning", "load_bank", "count_ok"]

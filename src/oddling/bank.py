@@ -21,6 +21,7 @@ FORMAT_VERSION = 1
 METADATA_FILE = "bank.json"
 EMBEDDINGS_FILE = "embeddings.npy"
 CALIBRATION_FILE = "calibration_scores.npy"
+HEALTH_FILE = "health_stats.npy"
 
 
 @dataclass
@@ -38,6 +39,9 @@ class Bank:
     calibration_scores : ndarray (n_cal,) float64, scores of known-normal images.
     calibration : dict
         method, target_fpr, cutoff (flag when score > cutoff), n.
+    health_stats : ndarray (n, len(health.STATS)) float64, per-reference image statistics.
+    health_fences : dict
+        Tukey fences per statistic, fitted on the references (health.fit_fences).
     skipped : list of dict
         Reference files that could not be used: path, status.
     """
@@ -52,6 +56,8 @@ class Bank:
     reference_root: str
     tool_version: str
     created: str
+    health_stats: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+    health_fences: dict = field(default_factory=dict)
     skipped: list[dict] = field(default_factory=list)
     path: Path | None = None
 
@@ -69,6 +75,7 @@ class Bank:
             "mode": self.mode,
             "k": self.k,
             "calibration": self.calibration,
+            "health_fences": self.health_fences,
             "reference_root": self.reference_root,
             "n_references": self.size,
             "references": self.references,
@@ -93,6 +100,7 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
     try:
         np.save(tmp / EMBEDDINGS_FILE, np.ascontiguousarray(bank.embeddings, dtype=np.float32))
         np.save(tmp / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
+        np.save(tmp / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
         # Metadata last: a folder without bank.json is never taken for a bank.
         with open(tmp / METADATA_FILE, "w", encoding="utf-8") as f:
             json.dump(bank.metadata(), f, indent=2)
@@ -132,6 +140,7 @@ def load_bank(path: str | os.PathLike) -> Bank:
     try:
         embeddings = np.load(folder / EMBEDDINGS_FILE, allow_pickle=False)
         calibration_scores = np.load(folder / CALIBRATION_FILE, allow_pickle=False)
+        health_stats = np.load(folder / HEALTH_FILE, allow_pickle=False)
     except (OSError, ValueError) as exc:
         raise OddlingError(f"bank {folder} is damaged: {exc}") from exc
     if embeddings.shape != (meta["n_references"], meta["backbone"]["embedding_dim"]):
@@ -150,6 +159,8 @@ def load_bank(path: str | os.PathLike) -> Bank:
         reference_root=meta["reference_root"],
         tool_version=meta["tool_version"],
         created=meta["created"],
+        health_stats=health_stats,
+        health_fences=meta.get("health_fences", {}),
         skipped=meta.get("skipped", []),
         path=folder,
     )

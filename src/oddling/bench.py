@@ -24,7 +24,7 @@ def make_test_jpegs(folder: Path, n: int, seed: int = 0, size: tuple[int, int] =
     for i in range(n):
         low = rng.integers(0, 256, (max(1, h // 32), max(1, w // 32), 3)).astype(np.uint8)
         base = np.asarray(Image.fromarray(low).resize((w, h), Image.Resampling.BICUBIC), dtype=np.int16)
-        grain = rng.integers(-40, 41, base.shape, dtype=np.int16)
+        grain = rng.integers(-17, 18, base.shape, dtype=np.int16)
         path = folder / f"img_{i:05d}.jpg"
         Image.fromarray(np.clip(base + grain, 0, 255).astype(np.uint8)).save(path, quality=90)
         paths.append(path)
@@ -44,7 +44,7 @@ def measure(backbone_id: str, runtime: str = "auto", n_images: int = 96, bank_si
 
         start = time.perf_counter()
         with ThreadPoolExecutor(workers) as pool:
-            arrays = [a for _, a, _ in pool.map(lambda p: _prepare(p, net.preprocessing), paths)]
+            arrays = [a for _, a, _, _ in pool.map(lambda p: _prepare(p, net.preprocessing), paths)]
         decode = n_images / (time.perf_counter() - start)
 
         batch = np.stack(arrays[:batch_size])

@@ -1,4 +1,5 @@
-"""Files -> embeddings: decode and preprocess in threads, run the backbone in batches.
+"""Files -> embeddings (and cheap image statistics): decode and preprocess in threads, run the
+backbone in batches.
 
 Streams: at most two batches of decoded images are held at a time (the one being embedded and
 the one being decoded), so memory does not grow with the number of files.
@@ -16,7 +17,8 @@ from tqdm import tqdm
 
 from .backbones import Backbone
 from .embed_cache import EmbeddingCache
-from .intake import IntakeError, load_rgb, sha256_file
+from .health import STATS, image_stats
+from .intake import ORIGINAL_SIZE, IntakeError, load_rgb, sha256_file
 from .preprocess import Preprocessing
 
 OK = "ok"
@@ -25,7 +27,7 @@ _CACHED = "cached"   # internal: the vector is in the cache, nothing to decode
 
 @dataclass
 class FileRecord:
-    """What happened to one input file. `row` indexes the embeddings when status is "ok"."""
+    """What happened to one input file. `row` indexes embeddings and health when status is "ok"."""
 
     path: str
     sha256: str | None
@@ -37,30 +39,34 @@ class FileRecord:
 class EmbeddedFiles:
     records: list[FileRecord]
     embeddings: np.ndarray  # (number of ok records, dim), float32, L2-normalised
+    health: np.ndarray      # (number of ok records, len(health.STATS)), float64
 
     @property
     def ok_records(self) -> list[FileRecord]:
         return [r for r in self.records if r.row is not None]
+
+    def health_of(self, record: FileRecord) -> dict[str, float]:
+        return dict(zip(STATS, self.health[record.row].tolist()))
 
 
 def default_workers() -> int:
     return max(1, min(4, os.cpu_count() or 1))
 
 
-def _prepare(path: Path, preprocessing: Preprocessing,
-             cache: EmbeddingCache | None = None) -> tuple[str | None, np.ndarray | None, str]:
-    """(sha256, network input, status) for one file; never raises for a bad file."""
+def _prepare(path: Path, preprocessing: Preprocessing, cache: EmbeddingCache | None = None):
+    """(sha256, network input, health statistics, status) for one file; never raises for a bad file."""
     try:
         digest = sha256_file(path)
     except OSError as exc:
-        return None, None, f"unreadable: {exc.strerror or exc}"
+        return None, None, None, f"unreadable: {exc.strerror or exc}"
     if cache is not None and cache.get(digest) is not None:
-        return digest, None, _CACHED
+        return digest, None, None, _CACHED
     try:
         image = load_rgb(path, min_side=preprocessing.resize_shorter)
-        return digest, preprocessing.to_array(image), OK
     except IntakeError as exc:
-        return digest, None, exc.status
+        return digest, None, None, exc.status
+    stats = image_stats(image, *image.info[ORIGINAL_SIZE])
+    return digest, preprocessing.to_array(image), np.array([stats[s] for s in STATS]), OK
 
 
 def embed_files(
@@ -83,7 +89,8 @@ def embed_files(
     root = Path(root)
     prep = backbone.preprocessing
     records: list[FileRecord] = []
-    vectors: list[np.ndarray] = []
+    vectors: list[np.ndarray | None] = []
+    health: list[np.ndarray] = []
     batches = [paths[i:i + batch_size] for i in range(0, len(paths), batch_size)]
     bar = tqdm(total=len(paths), desc=desc, unit="img", file=sys.stderr, disable=not progress, leave=False)
     try:
@@ -95,27 +102,35 @@ def embed_files(
                 # Decode the next batch while the network works on this one.
                 pending = submit(batches[i + 1]) if i + 1 < len(batches) else []
                 to_embed = []
-                for path, (digest, array, status) in zip(batch, results):
+                for path, (digest, array, stats, status) in zip(batch, results):
                     rel = path.relative_to(root).as_posix()
                     if status == _CACHED:
+                        vector, stats = cache.get(digest)
                         records.append(FileRecord(rel, digest, OK, len(vectors)))
-                        vectors.append(cache.get(digest))
+                        vectors.append(vector)
+                        health.append(stats)
                     elif array is None:
                         records.append(FileRecord(rel, digest, status))
                     else:
                         records.append(FileRecord(rel, digest, OK, len(vectors)))
                         vectors.append(None)   # filled in below, once the batch has run
+                        health.append(stats)
                         to_embed.append((len(vectors) - 1, digest, array))
                 if to_embed:
                     embedded = backbone.embed(np.stack([a for _, _, a in to_embed]))
                     for (row, digest, _), vec in zip(to_embed, embedded):
                         vectors[row] = vec
                         if cache is not None:
-                            cache.add(digest, vec)
+                            cache.add(digest, vec, health[row])
                 bar.update(len(batch))
     finally:
         bar.close()
         if cache is not None:
             cache.flush()   # keep the finished work, also on Ctrl-C
-    embeddings = np.stack(vectors) if vectors else np.zeros((0, backbone.embedding_dim), np.float32)
-    return EmbeddedFiles(records, embeddings.astype(np.float32, copy=False))
+    if vectors:
+        embeddings = np.stack(vectors).astype(np.float32, copy=False)
+        stats_table = np.stack(health).astype(np.float64)
+    else:
+        embeddings = np.zeros((0, backbone.embedding_dim), np.float32)
+        stats_table = np.zeros((0, len(STATS)))
+    return EmbeddedFiles(records, embeddings, stats_table)

@@ -11,6 +11,7 @@ from PIL import Image, ImageOps, UnidentifiedImageError
 
 IMAGE_SUFFIXES = frozenset({".jpg", ".jpeg", ".png", ".bmp", ".tif", ".tiff", ".webp", ".gif"})
 MAX_PIXELS_DEFAULT = 89_478_485     # decompression-bomb guard: Pillow's own default limit (~9.5k x 9.5k)
+ORIGINAL_SIZE = "oddling_original_size"   # key in image.info: (width, height) of the file itself
 BANK_MARKER = "bank.json"          # a folder holding this file is an oddling bank, never input
 
 # Only the decoders for the suffixes above: a file named .png that holds EPS or another rarely
@@ -143,14 +144,20 @@ def _decode(path: Path, min_side: int | None, max_pixels: int) -> Image.Image:
             # A square request holds whichever way the EXIF orientation later turns the image.
             opened.draft("RGB", (min_side, min_side))
         opened.load()   # a freshly opened animation is at frame 0: only the first frame is decoded
+        decoded_size = opened.size
         try:
             image = ImageOps.exif_transpose(opened)   # always a new image, independent of the file
         except Exception:   # broken EXIF should not cost a decodable image: keep it unrotated
             image = opened.copy()
+    # The file's own size, as the viewer shows it (turned by EXIF), whatever draft mode decoded.
+    turned = image.size != decoded_size
+    original_size = (height, width) if turned else (width, height)
     try:
-        return to_rgb(image)
+        rgb = to_rgb(image)
     except ValueError as exc:   # e.g. a TIFF in LAB, which Pillow cannot convert to RGB
         raise IntakeError(f"unreadable: cannot convert mode {image.mode} to RGB ({_short(exc)})") from exc
+    rgb.info[ORIGINAL_SIZE] = original_size
+    return rgb
 
 
 def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXELS_DEFAULT) -> Image.Image:

@@ -9,7 +9,7 @@ from pathlib import Path
 
 from .embed import OK
 
-SCORE_COLUMNS = ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "status"]
+SCORE_COLUMNS = ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "health", "status"]
 
 
 @dataclass
@@ -22,6 +22,7 @@ class ScoreRow:
     flagged: bool | None = None
     nearest: list[str] = field(default_factory=list)          # nearest references, nearest first
     nearest_distances: list[float] = field(default_factory=list)
+    health: str = ""             # "ok" or the image statistics out of the references' range
     label: int | None = None     # evaluate only: 1 anomalous, 0 normal
     kind: str | None = None      # evaluate only: anomaly kind (subfolder name) or "normal"
 
@@ -52,6 +53,7 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
             "" if r.flagged is None else ("true" if r.flagged else "false"),
             r.nearest[0] if r.nearest else "",
             _num(r.nearest_distances[0]) if r.nearest_distances else "",
+            r.health,
             r.status,
         ]
         if with_labels:
