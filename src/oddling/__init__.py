@@ -5,9 +5,13 @@ detector on labelled data. Higher scores are always more anomalous.
 """
 __version__ = "0.1.0"
 
-from .api import EvaluationResult, OddlingWarning, RunOptions, ScoreResult, evaluate, fit, score  # noqa: E402
+from .api import (  # noqa: E402
+    EvaluationResult, OddlingWarning, RunOptions, ScoreResult, audit, bank_add, bank_info, bank_remove, drift,
+    drift_history, evaluate, fit, score,
+)
 from .bank import Bank, load_bank  # noqa: E402
 from .errors import OddlingError  # noqa: E402
 
 __all__ = ["__version__", "Bank", "EvaluationResult", "OddlingError", "OddlingWarning", "RunOptions", "ScoreResult",
-           "evaluate", "fit", "load_bank", "score"]
+           "audit", "bank_add", "bank_info", "bank_remove", "drift", "drift_history", "evaluate", "fit",
+           "load_bank", "score"]

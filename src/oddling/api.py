@@ -272,6 +272,8 @@ class EvaluationResult:
     metrics: dict
     labels: np.ndarray     # of the labelled, scored rows, in `scored_labelled` order
     scores: np.ndarray
+    bank: Bank | None = None
+    root: Path | None = None    # the test folder
 
     @property
     def scored_labelled(self) -> list[ScoreRow]:
@@ -346,7 +348,7 @@ def evaluate(
                        "k": bank.k, "n_references": bank.size, "target_fpr": rate}
     summary["unreadable"] = [{"path": r.path, "status": r.status} for r in rows if r.score is None]
     summary["unlabelled"] = [r.path for r in rows if r.score is not None and r.label is None]
-    return EvaluationResult(rows, summary, labels, scores)
+    return EvaluationResult(rows, summary, labels, scores, bank, test_dir)
 
 
 
@@ -463,5 +465,79 @@ def bank_info(bank_path: str | os.PathLike) -> dict:
         "n_skipped": len(bank.skipped), "path": str(bank.path)}
 
 
-__all__ = ["fit", "score", "evaluate", "bank_add", "bank_remove", "bank_info", "RunOptions", "ScoreResult",
+
+def drift(
+    incoming_dir: str | os.PathLike,
+    bank: Bank | str | os.PathLike,
+    *,
+    n_permutations: int = 500,
+    seed: int = 0,
+    record: bool = True,
+    options: RunOptions | None = None,
+) -> dict:
+    """Has this whole batch moved away from the references?
+
+    Two tests: MMD between the batch's and the bank's embeddings with a permutation p-value
+    (Gretton et al. 2012), and the share flagged at the bank's cutoff against its target rate
+    (exact binomial test). With `record`, one line per run is appended to the bank's history.
+    """
+    from .bank import HISTORY_FILE
+    from .shift import flagged_share_test, mmd_permutation_test, shift_verdict
+
+    options = options or RunOptions()
+    incoming_dir = _folder(incoming_dir, "incoming folder")
+    bank = _as_bank(bank)
+    net = _load_matching_backbone(bank, None, options)
+    embedded = _embed_folder(incoming_dir, net, options, "embedding batch", (bank.path,) if bank.path else ())
+    n = len(embedded.embeddings)
+    if n < 2:
+        raise OddlingError(f"{incoming_dir} has {n} readable images; a shift test needs at least 2")
+    mmd = mmd_permutation_test(embedded.embeddings, bank.embeddings, n_permutations=n_permutations, seed=seed)
+    scored = score_vectors(bank, embedded.embeddings)
+    share = flagged_share_test(int(scored.flagged.sum()), n, bank.calibration["target_fpr"])
+    shift = shift_verdict(mmd["p_value"], share["binomial_p_value"])
+    result = {
+        "batch": str(incoming_dir),
+        "n_batch": n,
+        "n_bank": bank.size,
+        "mmd": json_number(float(np.sqrt(max(mmd["mmd2"], 0.0)))),
+        "mmd2": json_number(mmd["mmd2"]),
+        "mmd_p_value": json_number(mmd["p_value"]),
+        "mmd_bandwidth": json_number(mmd["bandwidth"]),
+        "n_permutations": n_permutations,
+        "n_flagged": int(scored.flagged.sum()),
+        "flagged_share": json_number(share["flagged_share"]),
+        "expected_share": share["expected_share"],
+        "binomial_p_value": json_number(share["binomial_p_value"]),
+        "shift": bool(shift),
+        "rule": "shift when either p-value < 0.025 (0.05 split over the two tests, Bonferroni)",
+    }
+    if record and bank.path is not None:
+        entry = {"time": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()} | result
+        with open(Path(bank.path) / HISTORY_FILE, "a", encoding="utf-8") as f:
+            f.write(json.dumps(entry, sort_keys=True) + "\n")
+    return result
+
+
+def drift_history(bank_path: str | os.PathLike) -> list[dict]:
+    from .bank import HISTORY_FILE
+
+    bank = load_bank(bank_path)
+    path = Path(bank_path) / HISTORY_FILE
+    if not path.is_file():
+        raise OddlingError(f"{bank_path} has no drift history yet; run `oddling drift INCOMING --bank {bank_path}`")
+    entries = [json.loads(line) for line in path.read_text(encoding="utf-8").splitlines() if line.strip()]
+    return [e | {"expected_share": e.get("expected_share", bank.calibration["target_fpr"])} for e in entries]
+
+
+def audit(bank: Bank | str | os.PathLike) -> dict:
+    """Findings about the reference set itself: outliers, duplicates, near duplicates, health."""
+    from .reference_audit import NEAR_DUPLICATE_COSINE, audit_bank
+
+    bank = _as_bank(bank)
+    findings = audit_bank(bank)
+    return {"bank": str(bank.path) if bank.path else None, "n_references": bank.size,
+            "near_duplicate_cosine": NEAR_DUPLICATE_COSINE, "findings": [f.to_dict() for f in findings]}
+
+__all__ = ["fit", "score", "evaluate", "drift", "drift_history", "audit", "bank_add", "bank_remove", "bank_info", "RunOptions", "ScoreResult",
            "EvaluationResult", "OddlingWarning", "load_bank", "count_ok"]

@@ -22,6 +22,7 @@ METADATA_FILE = "bank.json"
 EMBEDDINGS_FILE = "embeddings.npy"
 CALIBRATION_FILE = "calibration_scores.npy"
 HEALTH_FILE = "health_stats.npy"
+HISTORY_FILE = "drift_history.jsonl"   # appended by `oddling drift`; carried over when a bank is replaced
 
 
 @dataclass
@@ -108,6 +109,8 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
             f.flush()
             os.fsync(f.fileno())
         if target.exists():
+            if (target / HISTORY_FILE).is_file():
+                shutil.copy2(target / HISTORY_FILE, tmp / HISTORY_FILE)
             old = target.with_name(f".{target.name}.old-{os.getpid()}")
             os.replace(target, old)
             os.replace(tmp, target)

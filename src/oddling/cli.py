@@ -120,16 +120,23 @@ def fit(reference_dir, bank_path, backbone, k, target_fpr, force, **run):
               help="Override the bank's false-alarm rate for this run.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
 @click.option("--fail-on-flagged", is_flag=True, help="Exit 1 when any image is flagged.")
-@click.option("--force", is_flag=True, help="Overwrite an existing output file.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Also write the review page (self-contained HTML) here.")
+@click.option("--force", is_flag=True, help="Overwrite existing output files.")
 @run_options
 @user_errors
-def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, force, **run):
+def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, force, **run):
     """Score every image in INCOMING_DIR against a bank."""
-    if out_csv.exists() and not force:
-        raise OddlingError(f"{out_csv} already exists; pass --force to overwrite it")
+    for path in (out_csv, report_path):
+        if path is not None and path.exists() and not force:
+            raise OddlingError(f"{path} already exists; pass --force to overwrite it")
     result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, options=_options(**run))
     result.write_csv(out_csv, force=True)
     summary = result.summary() | {"out": str(out_csv)}
+    if report_path is not None:
+        from .report import write_report
+
+        summary["report"] = str(write_report(report_path, result, force=True))
     if as_json:
         _print_json(summary)
     else:
@@ -156,14 +163,24 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
 @click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
               help="Override the bank's false-alarm rate for this run.")
 @click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Also write the review page (self-contained HTML) here.")
 @click.option("--force", is_flag=True, help="Overwrite earlier results in --out-dir.")
 @run_options
 @user_errors
-def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, force, **run):
+def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, report_path,
+             force, **run):
     """Measure the detector on TEST_DIR, a folder of labelled images."""
+    if report_path is not None and report_path.exists() and not force:
+        raise OddlingError(f"{report_path} already exists; pass --force to overwrite it")
     result = api.evaluate(test_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                           beta=beta, target_fpr=target_fpr, options=_options(**run))
     paths = result.write(out_dir, force=force)
+    if report_path is not None:
+        from .report import write_report
+
+        write_report(report_path, result, bank=result.bank, scored_root=test_dir, force=True)
+        click.echo(f"Review page: {report_path}", err=True)
     m = result.metrics
     if as_json:
         _print_json(m)
@@ -177,6 +194,42 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
             f"false-alarm rate {_num(c['fpr'])}.\nResults in {paths['metrics'].parent}", err=True)
         if m["unreadable"]:
             click.echo(f"{len(m['unreadable'])} unreadable files listed in metrics.json (not counted).", err=True)
+
+
+@main.command()
+@click.argument("folder", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Bank folder made by `oddling fit`.")
+@click.option("--out", "out_html", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="HTML file to write; plots go to a sibling folder <name>_plots/.")
+@click.option("--labelled", is_flag=True,
+              help="FOLDER is a labelled test folder (class subfolders, or --labels): show labels and metrics.")
+@click.option("--labels", "labels_csv", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
+              help="CSV with path,label for a labelled folder (implies --labelled).")
+@click.option("--normal-label", "normal_labels", multiple=True, default=("normal",), show_default=True,
+              help="Subfolder name that holds normal images (repeatable).")
+@click.option("--top", "top_n", type=click.IntRange(min=1), default=200, show_default=True,
+              help="Cards shown in the gallery, highest scores first.")
+@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
+              help="Override the bank's false-alarm rate for this page.")
+@click.option("--force", is_flag=True, help="Overwrite an existing page.")
+@run_options
+@user_errors
+def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top_n, target_fpr, force, **run):
+    """Write the review page for FOLDER scored against a bank (cached embeddings make this quick)."""
+    from .report import write_report
+
+    if out_html.exists() and not force:
+        raise OddlingError(f"{out_html} already exists; pass --force to overwrite it")
+    options = _options(**run)
+    if labelled or labels_csv:
+        result = api.evaluate(folder, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
+                              target_fpr=target_fpr, options=options)
+        path = write_report(out_html, result, bank=result.bank, scored_root=folder, top_n=top_n, force=True)
+    else:
+        result = api.score(folder, bank_path, target_fpr=target_fpr, options=options)
+        path = write_report(out_html, result, top_n=top_n, force=True)
+    click.echo(f"Review page: {path}", err=True)
 
 
 @main.command()
@@ -203,6 +256,7 @@ def demo(directory, seed, force, as_json, **run):
         f"  bank:              {out['bank']} ({out['n_references']} reference tiles)\n"
         f"  incoming batch:    {inc['n_flagged']} of {inc['n_scored']} frames flagged -> {out['incoming_scores']}\n"
         f"                     (the truth, for checking: {out['incoming_truth']})\n"
+        f"  review pages:      {out['incoming_report']} and {out['evaluation']['report']}\n"
         f"  labelled test set: AUROC {_num(out['auroc'])} (95% CI {_num(low)}-{_num(high)}), "
         f"average precision {_num(out['average_precision'])}\n"
         f"                     at the cutoff: precision {_num(c['precision'])}, recall {_num(c['recall'])}, "
@@ -238,6 +292,134 @@ def bench(backbone, n_images, estimate_for, as_json, cache_dir, runtime, batch_s
         f"  end to end           {result['end_to_end_per_s']:8.1f} img/s\n"
         f"  kNN search           {result['search_queries_per_s']:8.0f} queries/s on a {result['bank_size']}-image bank\n"
         f"about {seconds / 60:.1f} min for {estimate_for} images (1-MP JPEGs; larger files decode slower)")
+
+
+@main.command()
+@click.argument("incoming_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Bank to compare the batch with.")
+@click.option("--history", "history_bank", type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Instead of testing a batch: read this bank's history of checks (with --plot).")
+@click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="With --history: draw flagged share and MMD over time into this PNG.")
+@click.option("--permutations", type=click.IntRange(min=19), default=500, show_default=True,
+              help="Permutations for the MMD p-value.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed for subsampling and permutations.")
+@click.option("--json", "as_json", is_flag=True, help="Print the statistics as JSON.")
+@click.option("--fail-on-shift", is_flag=True, help="Exit 1 when the batch has shifted.")
+@run_options
+@user_errors
+def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, as_json, fail_on_shift, **run):
+    """Test whether the batch INCOMING_DIR as a whole has shifted away from the bank."""
+    if history_bank is not None:
+        entries = api.drift_history(history_bank)
+        if plot_path is not None:
+            from .plots import plot_drift_history
+
+            plot_drift_history(entries, entries[-1]["expected_share"], plot_path)
+            click.echo(f"{len(entries)} checks drawn in {plot_path}", err=True)
+        if as_json:
+            _print_json({"history": entries})
+        elif plot_path is None:
+            for e in entries:
+                click.echo(f"{e['time']}  {'SHIFT   ' if e['shift'] else 'no shift'}  flagged {e['flagged_share']:.3f} "
+                           f"(expected {e['expected_share']:g})  MMD {e['mmd']:.4f} p {e['mmd_p_value']:.4f}  {e['batch']}")
+        return
+    if incoming_dir is None or bank_path is None:
+        raise click.UsageError("give INCOMING_DIR and --bank, or --history BANK")
+    result = api.drift(incoming_dir, bank_path, n_permutations=permutations, seed=seed, options=_options(**run))
+    if as_json:
+        _print_json(result)
+    else:
+        verdict = "SHIFT: this batch differs from the references" if result["shift"] else "no shift detected"
+        click.echo(
+            f"{verdict}\n"
+            f"  embedding distribution: MMD {result['mmd']:.4f}, permutation p-value {result['mmd_p_value']:.4f}\n"
+            f"  flagged share: {result['flagged_share']:.3f} of {result['n_batch']} (expected {result['expected_share']:g}),"
+            f" binomial p-value {result['binomial_p_value']:.4g}")
+    if fail_on_shift and result["shift"]:
+        sys.exit(EXIT_ATTENTION)
+
+
+@main.command()
+@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Bank to audit.")
+@click.option("--json", "as_json", is_flag=True, help="Print the findings as JSON (input for `bank remove`).")
+@user_errors
+def audit(bank_path, as_json):
+    """Check the reference set itself: outliers, duplicates, near duplicates, unhealthy frames."""
+    result = api.audit(bank_path)
+    if as_json:
+        _print_json(result)
+        return
+    findings = result["findings"]
+    if not findings:
+        click.echo(f"No findings among {result['n_references']} references.")
+    for f in findings:
+        click.echo(f"{f['kind']:15s} {f['path']}: {f['detail']}")
+
+
+@main.group("bank")
+def bank_group():
+    """Inspect a bank and change its references without rebuilding it."""
+
+
+@bank_group.command("info")
+@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print as JSON.")
+@user_errors
+def bank_info(bank_path, as_json):
+    """What BANK holds and how it was made."""
+    info = api.bank_info(bank_path)
+    if as_json:
+        _print_json(info)
+        return
+    cal = info["calibration"]
+    click.echo(
+        f"bank {info['path']} (format {info['format_version']}, made {info['created']} by oddling {info['tool_version']})\n"
+        f"  backbone   {info['backbone']['id']} (weights SHA-256 {info['backbone']['weights_sha256'][:16]}...)\n"
+        f"  references {info['n_references']} from {info['reference_root']} ({info['n_skipped']} files skipped)\n"
+        f"  mode {info['mode']}, k={info['k']}; calibration {cal['method']} on {cal['n']} scores; cutoff "
+        f"{_num(cal['cutoff'], 4)} at target false-alarm rate {cal['target_fpr']}")
+
+
+@bank_group.command("add")
+@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("source", type=click.Path(exists=True, path_type=Path))
+@click.option("--root", type=click.Path(exists=True, file_okay=False, path_type=Path), default=None,
+              help="Folder the decisions CSV's relative paths start from [default: the CSV's folder].")
+@run_options
+@user_errors
+def bank_add(bank_path, source, root, **run):
+    """Add SOURCE to BANK: a folder of normal images, or a report's decisions CSV (rows marked normal)."""
+    result = api.bank_add(bank_path, source, root=root, options=_options(**run))
+    click.echo(f"Added {result['added']} references ({result['already_in_bank']} already in the bank, "
+               f"{len(result['skipped'])} unreadable); the bank now holds {result['n_references']}.", err=True)
+
+
+@bank_group.command("remove")
+@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("items", nargs=-1, required=True)
+@click.option("--kind", "kinds", multiple=True,
+              type=click.Choice(["outlier", "duplicate", "near_duplicate", "health"]),
+              help="With an audit JSON: remove only findings of this kind (repeatable) [default: all].")
+@user_errors
+def bank_remove(bank_path, items, kinds):
+    """Remove references from BANK: their paths as `bank info`/`audit` show them, or an audit JSON file."""
+    paths = []
+    for item in items:
+        if item.endswith(".json") and Path(item).is_file():
+            try:
+                findings = json.loads(Path(item).read_text(encoding="utf-8"))["findings"]
+            except (ValueError, KeyError) as exc:
+                raise OddlingError(f"{item} is not an audit JSON (from `oddling audit --json`)") from exc
+            paths += [f["path"] for f in findings if not kinds or f["kind"] in kinds]
+        else:
+            paths.append(item)
+    result = api.bank_remove(bank_path, paths)
+    click.echo(f"Removed {result['removed']} references; the bank now holds {result['n_references']}.", err=True)
+    for missing in result["not_found"][:10]:
+        click.echo(f"  not in the bank: {missing}", err=True)
 
 
 @main.group()

@@ -7,6 +7,7 @@ from pathlib import Path
 from . import api
 from .demo_scene import SceneCounts, generate_scene
 from .errors import OddlingError
+from .report import write_report
 
 MARKER = ".oddling-demo"   # says a folder was made by the demo, so --force may clear it
 
@@ -40,11 +41,16 @@ def run_demo(root: str | Path, seed: int = 0, force: bool = False, counts: Scene
     log("Evaluating on the labelled test folder ...")
     evaluation = api.evaluate(scene_root / "test", bank, options=options)
     eval_paths = evaluation.write(root / "evaluation")
+    log("Writing the review pages ...")
+    incoming_report = write_report(root / "incoming_report.html", scored)
+    eval_paths["report"] = write_report(root / "evaluation" / "report.html", evaluation,
+                                        bank=bank, scored_root=scene_root / "test")
     m = evaluation.metrics
     return {
         "root": str(root),
         "bank": str(bank_path),
         "incoming_scores": str(scores_csv),
+        "incoming_report": str(incoming_report),
         "incoming_truth": str(scene_root / "incoming_truth.csv"),
         "evaluation": {k: str(v) for k, v in eval_paths.items()},
         "n_references": bank.size,

@@ -56,3 +56,30 @@ def plot_pr(precision, recall, average_precision: float | None, prevalence: floa
 
 
 __all__ = ["plot_pr", "plot_roc"]
+
+
+def plot_drift_history(entries: list[dict], expected_share: float, path: str | os.PathLike,
+                       title: str = "Batch shift over time") -> Path:
+    """Flagged share per batch against the expected share (top) and the MMD effect size (bottom)."""
+    import datetime as dt
+
+    times = [dt.datetime.fromisoformat(e["time"]) for e in entries]
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(7, 5.5), sharex=True, dpi=120)
+    top.plot(times, [e["flagged_share"] for e in entries], marker="o", label="flagged share")
+    top.axhline(expected_share, linestyle="--", color="grey", label=f"expected ({expected_share:g})")
+    top.scatter([t for t, e in zip(times, entries) if e["shift"]],
+                [e["flagged_share"] for e in entries if e["shift"]], color="crimson", zorder=3, label="shift")
+    top.set_ylabel("Share flagged")
+    top.set_title(title)
+    top.legend(loc="upper left")
+    top.grid(alpha=0.3)
+    bottom.plot(times, [e["mmd"] for e in entries], marker="o", color="darkorange")
+    bottom.set_ylabel("MMD (effect size)")
+    bottom.set_xlabel("Time of the check (UTC)")
+    bottom.grid(alpha=0.3)
+    fig.autofmt_xdate()
+    fig.tight_layout()
+    out = Path(path)
+    fig.savefig(out)
+    plt.close(fig)
+    return out

@@ -1,0 +1,644 @@
+"""The review report: one self-contained HTML page to look at scored images and decide on them.
+
+Everything the page shows is inside the file (thumbnails and plots as data URIs, CSS and JS
+inline, a Content-Security-Policy that forbids any fetch), so it opens offline from a file or an
+e-mail attachment. The plots are also written as PNG files in `<stem>_plots/` beside the page.
+"""
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import hashlib
+import html
+import io
+import json
+import math
+import os
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import numpy as np
+from PIL import Image
+
+from . import __version__
+from .bank import Bank
+from .errors import OddlingError
+from .intake import IntakeError, load_rgb
+from .results import ScoreRow, sort_rows, write_text
+
+HISTOGRAM_FILE = "scores_histogram.png"
+ROC_FILE = "roc.png"
+PR_FILE = "pr.png"
+STORAGE_PREFIX = "oddling-decisions:"
+DECISIONS = ("normal", "anomalous", "unsure")
+CAUTION = ("oddling is a screening aid: flags are for people to review. Flagged and unflagged items alike "
+           "deserve the sampling the site's quality procedures require.")
+_JPEG_QUALITY = 80
+_DPI = 120
+# Colours of the histogram, matching the page's palette.
+_CAL_COLOUR, _BATCH_COLOUR, _ANOMALY_COLOUR = "#7a8597", "#17607a", "#b3261e"
+
+
+def plots_folder(out_html: str | os.PathLike) -> Path:
+    """Where write_report puts the PNG copies of its plots: `<stem>_plots/` beside the page."""
+    out_html = Path(out_html)
+    return out_html.with_name(f"{out_html.stem}_plots")
+
+
+def write_report(
+    out_html: str | os.PathLike,
+    result,
+    *,
+    scored_root: str | os.PathLike | None = None,
+    bank: Bank | None = None,
+    top_n: int = 200,
+    title: str | None = None,
+    force: bool = False,
+    thumb_px: int = 160,
+) -> Path:
+    """Write the review page for a score or evaluate run; return its path.
+
+    Parameters
+    ----------
+    out_html : path of the page. An existing page (or existing plots in `<stem>_plots/`) is
+        replaced only with force=True; otherwise OddlingError.
+    result : ScoreResult or EvaluationResult. With an EvaluationResult the page adds the
+        headline metrics, ROC and PR curves, each card's true label and a filter by kind.
+    scored_root : the folder that was scored (row paths are relative to it). Defaults to
+        `result.root` for a ScoreResult; required for an EvaluationResult.
+    bank : the bank scored against. Defaults to `result.bank` for a ScoreResult; required for
+        an EvaluationResult.
+    top_n : cards in the gallery, highest scores first; the page says how many more exist.
+    thumb_px : longest side of the embedded JPEG thumbnails.
+    """
+    out_html = Path(out_html)
+    bank = bank if bank is not None else getattr(result, "bank", None)
+    if not isinstance(bank, Bank):
+        raise OddlingError("write_report needs the bank the rows were scored against (bank=...)")
+    scored_root = scored_root if scored_root is not None else getattr(result, "root", None)
+    if scored_root is None:
+        raise OddlingError("write_report needs the scored folder (scored_root=...)")
+    scored_root = Path(scored_root)
+    if top_n < 1:
+        raise OddlingError(f"top_n must be >= 1, got: {top_n}")
+    if not 16 <= thumb_px <= 1024:
+        raise OddlingError(f"thumb_px must be in [16, 1024], got: {thumb_px}")
+    metrics = getattr(result, "metrics", None)
+    if metrics is not None:
+        target_fpr = metrics["bank"]["target_fpr"]
+        cutoff = metrics["at_cutoff"]["cutoff"]
+        cutoff = math.inf if cutoff is None else cutoff   # json_number turned "flags nothing" into None
+    else:
+        target_fpr, cutoff = result.target_fpr, result.cutoff
+
+    plots = plots_folder(out_html)
+    plot_names = [HISTOGRAM_FILE] + ([ROC_FILE, PR_FILE] if metrics is not None else [])
+    clash = [p for p in [out_html] + [plots / n for n in plot_names] if p.exists()]
+    if clash and not force:
+        raise OddlingError(f"{clash[0]} already exists; pass --force to overwrite it")
+
+    rows = sort_rows(list(result.rows))
+    scored = [r for r in rows if r.score is not None]
+    shown = scored[:top_n]
+    plots.mkdir(parents=True, exist_ok=True)
+    figures = {"histogram": plot_score_histogram(bank.calibration_scores, scored, cutoff, target_fpr,
+                                                 plots / HISTOGRAM_FILE)}
+    if metrics is not None:
+        figures.update(_evaluation_plots(result, metrics, plots))
+    thumbs = _thumbnails(shown, scored_root, Path(bank.reference_root), thumb_px)
+
+    page = _Page(rows=rows, shown=shown, bank=bank, scored_root=scored_root, metrics=metrics,
+                 target_fpr=target_fpr, cutoff=cutoff, title=title, thumbs=thumbs,
+                 figures={k: _png_uri(p) for k, p in figures.items()}, plots_dir=plots.name)
+    return write_text(out_html, page.render(), force=True)
+
+
+def run_id(bank: Bank, scored_root: Path, rows: list[ScoreRow]) -> str:
+    """What the page's saved decisions are keyed by: the same bank, folder and files give the same id."""
+    key = json.dumps([str(bank.path) if bank.path else None, str(Path(scored_root).resolve()),
+                      sorted(r.path for r in rows)])
+    return hashlib.sha256(key.encode("utf-8")).hexdigest()[:16]
+
+
+# ---- plots ------------------------------------------------------------------------------------
+
+def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float, target_fpr: float,
+                         path: Path) -> Path:
+    """Calibration scores of the bank against the scored batch (split by true label when known),
+    as densities on shared bins, with the flag cutoff drawn."""
+    from .plots import plt  # importing oddling.plots selects the Agg backend
+
+    cal = np.asarray(calibration_scores, dtype=np.float64)
+    groups = [(f"scored batch (n={len(rows)})", np.array([r.score for r in rows]), _BATCH_COLOUR)]
+    if rows and all(r.label is not None for r in rows):
+        normal = np.array([r.score for r in rows if r.label == 0])
+        anomalous = np.array([r.score for r in rows if r.label == 1])
+        groups = [(f"scored, labelled normal (n={len(normal)})", normal, _BATCH_COLOUR),
+                  (f"scored, labelled anomalous (n={len(anomalous)})", anomalous, _ANOMALY_COLOUR)]
+    everything = np.concatenate([cal] + [g[1] for g in groups])
+    everything = everything[np.isfinite(everything)]
+    bins = np.histogram_bin_edges(everything, bins=min(50, max(10, int(np.sqrt(len(everything))))))
+    fig, ax = plt.subplots(figsize=(7.5, 4.4))
+    try:
+        ax.hist(cal, bins=bins, density=True, histtype="stepfilled", color=_CAL_COLOUR, alpha=0.35,
+                label=f"bank calibration, leave-one-out (n={len(cal)})")
+        for label, values, colour in groups:
+            if len(values):
+                ax.hist(values, bins=bins, density=True, histtype="step", lw=2, color=colour, label=label)
+        if math.isfinite(cutoff):
+            ax.axvline(cutoff, color="#222222", ls="--", lw=1.5,
+                       label=f"cutoff {cutoff:.4f} (target false-alarm rate {_percent(target_fpr)})")
+            ax.set_title("Scores: flagged when score > cutoff")
+        else:
+            ax.set_title("Scores (no usable cutoff: the bank is too small for this false-alarm rate)")
+        ax.set_xlabel("score: mean cosine distance to the k nearest references (higher = more anomalous)",
+                      fontsize=9)
+        ax.set_ylabel("density")
+        ax.grid(True, alpha=0.3)
+        ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=2, fontsize=8, frameon=False)
+        fig.tight_layout()
+        fig.savefig(path, dpi=_DPI)
+    finally:
+        plt.close(fig)
+    return path
+
+
+def _evaluation_plots(result, metrics: dict, folder: Path) -> dict[str, Path]:
+    from . import metrics as m
+    from .plots import plot_pr, plot_roc
+
+    labels, scores = np.asarray(result.labels), np.asarray(result.scores)
+    fpr, tpr, _ = m.roc_curve(labels, scores)
+    precision, recall, _ = m.precision_recall_curve(labels, scores)
+    return {"roc": plot_roc(fpr, tpr, metrics["auroc"], folder / ROC_FILE),
+            "pr": plot_pr(precision, recall, metrics["average_precision"], float(labels.mean()), folder / PR_FILE)}
+
+
+def _png_uri(path: Path) -> str:
+    return "data:image/png;base64," + base64.b64encode(Path(path).read_bytes()).decode("ascii")
+
+
+# ---- thumbnails -------------------------------------------------------------------------------
+
+def thumbnail_uri(path: Path, px: int) -> str | None:
+    """A JPEG data URI no larger than px on its longest side; None when the file cannot be decoded."""
+    try:
+        image = load_rgb(path, min_side=px)   # same safe decoding as scoring: EXIF, alpha over white, bomb guard
+    except IntakeError:
+        return None
+    image.thumbnail((px, px), Image.Resampling.LANCZOS)
+    buffer = io.BytesIO()
+    image.save(buffer, "JPEG", quality=_JPEG_QUALITY, optimize=True)
+    return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _thumbnails(shown: list[ScoreRow], scored_root: Path, reference_root: Path, px: int) -> dict[Path, str | None]:
+    """One thumbnail per distinct file, so a reference near many cards is embedded once."""
+    files = list(dict.fromkeys([scored_root / r.path for r in shown]
+                               + [reference_root / p for r in shown for p in r.nearest]))
+    with ThreadPoolExecutor(max_workers=min(8, os.cpu_count() or 1)) as pool:   # decoding releases the GIL
+        return dict(zip(files, pool.map(lambda f: thumbnail_uri(f, px), files)))
+
+
+# ---- the page ---------------------------------------------------------------------------------
+
+def _e(value) -> str:
+    return html.escape(str(value), quote=True)
+
+
+def _percent(rate: float | None) -> str:
+    return "n/a" if rate is None else f"{rate * 100:.4g}%"
+
+
+def _num(value: float | None, digits: int = 4) -> str:
+    return "n/a" if value is None or not math.isfinite(value) else f"{value:.{digits}f}"
+
+
+def _p(value: float | None) -> str:
+    return "n/a" if value is None or not math.isfinite(value) else f"{value:.4g}"
+
+
+def script_json(data) -> str:
+    """JSON that is safe inside <script>: no '<', '>' or '&' that could close or confuse the element."""
+    text = json.dumps(data, sort_keys=True, ensure_ascii=True)
+    return text.replace("<", "\\u003c").replace(">", "\\u003e").replace("&", "\\u0026")
+
+
+# Nothing may be fetched: the page is complete in itself.
+_CSP = ('<meta http-equiv="Content-Security-Policy" content="default-src \'none\'; img-src data:; '
+        'style-src \'unsafe-inline\'; script-src \'unsafe-inline\'">')
+# A transparent 1x1 GIF: the src of reference <img>s until the script fills in their shared data URI.
+_BLANK = "data:image/gif;base64,R0lGODlhAQABAIAAAAAAAP///yH5BAEAAAAALAAAAAABAAEAAAIBRAA7"
+
+
+class _Page:
+    def __init__(self, *, rows, shown, bank, scored_root, metrics, target_fpr, cutoff, title, thumbs, figures,
+                 plots_dir):
+        self.rows, self.shown, self.bank, self.metrics = rows, shown, bank, metrics
+        self.scored_root, self.target_fpr, self.cutoff = scored_root, target_fpr, cutoff
+        self.thumbs, self.figures, self.plots_dir = thumbs, figures, plots_dir
+        self.scored = [r for r in rows if r.score is not None]
+        self.unreadable = [r for r in rows if r.score is None]
+        self.labelled = any(r.label is not None for r in rows)
+        self.title = title or f"oddling review: {scored_root.name or scored_root}"
+        self.ref_ids: dict[Path, str] = {}
+        self.ref_uris: dict[str, str] = {}
+
+    def render(self) -> str:
+        gallery = self._gallery()   # first: it collects the reference thumbnails for the data block
+        data = {"runId": run_id(self.bank, self.scored_root, self.rows), "storagePrefix": STORAGE_PREFIX,
+                "refs": self.ref_uris, "decisions": list(DECISIONS)}
+        return "\n".join([
+            "<!DOCTYPE html>",
+            '<html lang="en">',
+            "<head>",
+            '<meta charset="utf-8">',
+            '<meta name="viewport" content="width=device-width, initial-scale=1">',
+            _CSP,
+            '<link rel="icon" href="data:,">',
+            f"<title>{_e(self.title)}</title>",
+            f"<style>{_CSS}</style>",
+            "</head>",
+            "<body>",
+            self._header(),
+            "<main>",
+            self._distribution(),
+            self._evaluation() if self.metrics is not None else "",
+            gallery,
+            self._unreadable(),
+            "</main>",
+            (f'<footer class="caution"><p>{_e(CAUTION)}</p>'
+             f'<p class="small">Made by oddling {_e(__version__)}.</p></footer>'),
+            f'<script type="application/json" id="oddling-data">{script_json(data)}</script>',
+            f"<script>{_JS}</script>",
+            "</body>",
+            "</html>",
+            "",
+        ])
+
+    # -- sections --
+
+    def _header(self) -> str:
+        b = self.bank
+        flagged = sum(bool(r.flagged) for r in self.rows)
+        if math.isfinite(self.cutoff):
+            cutoff = (f"score &gt; <strong>{_num(self.cutoff)}</strong>, set for a target false-alarm rate of "
+                      f"<strong>{_percent(self.target_fpr)}</strong> on normal images")
+        else:
+            cutoff = (f"none: {len(b.calibration_scores)} calibration images are too few for a false-alarm "
+                      f"rate of {_percent(self.target_fpr)}, so nothing can be flagged")
+        facts = [
+            ("Scored folder", f"<code>{_e(self.scored_root)}</code>"),
+            ("Files", (f"{len(self.rows)} found, {len(self.scored)} scored, <strong>{flagged} flagged</strong>, "
+                       f"{len(self.unreadable)} not scored")),
+            ("Flag rule", cutoff),
+            ("Bank", f"<code>{_e(b.path) if b.path else '(not saved)'}</code>"),
+            ("Backbone", f"<code>{_e(b.backbone.get('id', '?'))}</code>"),
+            ("References", (f"{b.size} images, k = {b.k} nearest; calibration "
+                            f"{_e(b.calibration.get('method', '?'))} over {len(b.calibration_scores)}")),
+            ("Reference folder", f"<code>{_e(b.reference_root)}</code>"),
+            ("Report made", _e(_dt.datetime.now().astimezone().replace(microsecond=0).isoformat())),
+            ("oddling", f"{_e(__version__)} (bank made with {_e(b.tool_version)} on {_e(b.created)})"),
+        ]
+        items = "".join(f"<div><dt>{name}</dt><dd>{value}</dd></div>" for name, value in facts)
+        kind = "evaluation" if self.metrics is not None else "scoring run"
+        return (f'<header class="masthead"><p class="eyebrow">oddling review report &middot; {kind}</p>'
+                f"<h1>{_e(self.title)}</h1><dl class=\"facts\">{items}</dl></header>")
+
+    def _figure(self, key: str, alt: str, caption: str, filename: str) -> str:
+        return (f'<figure><img src="{self.figures[key]}" alt="{_e(alt)}">'
+                f"<figcaption>{caption} PNG copy: <code>{_e(self.plots_dir)}/{_e(filename)}</code></figcaption></figure>")
+
+    def _distribution(self) -> str:
+        caption = ("Shaded: scores of the bank's own images, each scored against the others (what normal looks "
+                   "like). Lines: this batch. Images right of the dashed cutoff are flagged.")
+        return ('<section id="distribution"><h2>Score distribution</h2>'
+                + self._figure("histogram", "Histogram of calibration scores and scored batch with the cutoff",
+                               caption, HISTOGRAM_FILE) + "</section>")
+
+    def _evaluation(self) -> str:
+        m = self.metrics
+        low, high = m["auroc_ci95"]
+        c = m["at_cutoff"]
+        rates = ", ".join(f"{_num(v, 3)} at {_percent(float(r))}" for r, v in m["tpr_at_fpr"].items())
+        headline = [
+            ("AUROC", f"{_num(m['auroc'], 3)} (95% CI {_num(low, 3)} to {_num(high, 3)})"),
+            ("Average precision", _num(m["average_precision"], 3)),
+            ("At the cutoff", (f"recall {_num(c['recall'], 3)}, precision {_num(c['precision'], 3)}, "
+                               f"false-alarm rate {_num(c['fpr'], 3)}")),
+            ("Counts at the cutoff", (f"{c['tp']} anomalies caught, {c['fn']} missed, {c['fp']} false alarms, "
+                                      f"{c['tn']} normals passed")),
+            ("Recall at false-alarm rate", rates),
+            ("False-alarm rate at 95% recall", _num(m["fpr_at_tpr95"], 3)),
+            ("Test images", f"{m['n_normal']} normal, {m['n_anomalous']} anomalous"),
+        ]
+        per_kind = "".join(f"<tr><td>{_e(k)}</td><td class=\"num\">{_num(v, 3)}</td></tr>"
+                           for k, v in sorted(m.get("per_kind_auroc", {}).items()))
+        kinds = ('<p class="table-title">AUROC per anomaly kind (its anomalies against all normals)</p>'
+                 '<table class="kinds"><thead><tr><th>kind</th><th>AUROC</th></tr></thead>'
+                 f"<tbody>{per_kind}</tbody></table>"
+                 if per_kind else "")
+        items = "".join(f"<div><dt>{k}</dt><dd>{v}</dd></div>" for k, v in headline)
+        figures = (self._figure("roc", "ROC curve", "ROC: true positive rate against false positive rate.", ROC_FILE)
+                   + self._figure("pr", "Precision-recall curve", "Precision against recall.", PR_FILE))
+        return (f'<section id="evaluation"><h2>How well the scores separate the classes</h2>'
+                f'<dl class="metrics">{items}</dl>{kinds}<div class="figures">{figures}</div></section>')
+
+    def _controls(self) -> str:
+        kinds = ""
+        if self.labelled:
+            names = sorted({r.kind for r in self.shown if r.kind and r.label == 1})
+            options = ['<option value="">all</option>', '<option value="normal">normal</option>']
+            options += [f'<option value="{_e(k)}">{_e(k)}</option>' for k in names]
+            if any(r.label is None for r in self.shown):
+                options.append('<option value="(unlabelled)">(unlabelled)</option>')
+            kinds = (f'<label>True class <select id="f-kind">{"".join(options)}</select></label>')
+        return (
+            '<form class="controls" id="controls" role="search" aria-label="Filter and sort the gallery">'
+            '<label class="check"><input type="checkbox" id="f-flagged"> Flagged only</label>'
+            f"{kinds}"
+            '<label>Score from <input type="number" id="f-min" step="any" inputmode="decimal"></label>'
+            '<label>to <input type="number" id="f-max" step="any" inputmode="decimal"></label>'
+            '<label>Decision <select id="f-decision"><option value="">any</option>'
+            '<option value="(none)">not decided</option>'
+            + "".join(f'<option value="{d}">{d}</option>' for d in DECISIONS)
+            + '</select></label>'
+            '<label>Sort <select id="f-sort"><option value="score-desc">score, highest first</option>'
+            '<option value="score-asc">score, lowest first</option><option value="name">file name</option>'
+            "</select></label>"
+            '<button type="reset" class="plain">Clear filters</button>'
+            "</form>"
+        )
+
+    def _gallery(self) -> str:
+        n, total = len(self.shown), len(self.scored)
+        more = total - n
+        line = (f"showing {n} of {total} scored images; {more} more not shown"
+                + (" (all rows are in the scores CSV; filters apply to the images shown)" if more else ""))
+        cards = "".join(self._card(rank, row) for rank, row in enumerate(self.shown, 1))
+        return (
+            '<section id="gallery"><h2>Ranked images</h2>'
+            f'<p class="shown-line" id="shown-line">{_e(line)}</p>'
+            f"{self._controls()}"
+            '<div class="toolbar"><p id="match-count" aria-live="polite"></p>'
+            '<button type="button" id="export">Export decisions (CSV)</button></div>'
+            '<p id="storage-note" class="note" hidden>This browser does not let the page keep decisions; '
+            "export them before closing the page.</p>"
+            f'<ol class="cards" id="cards">{cards}</ol></section>'
+        )
+
+    def _ref_id(self, path: Path) -> str | None:
+        uri = self.thumbs.get(path)
+        if uri is None:
+            return None
+        if path not in self.ref_ids:
+            self.ref_ids[path] = f"r{len(self.ref_ids)}"
+            self.ref_uris[self.ref_ids[path]] = uri
+        return self.ref_ids[path]
+
+    def _card(self, rank: int, row: ScoreRow) -> str:
+        thumb = self.thumbs.get(self.scored_root / row.path)
+        name = row.path.rsplit("/", 1)[-1]
+        folder = f'<p class="path">{_e(row.path)}</p>' if name != row.path else ""
+        if thumb:
+            image = f'<img class="thumb" src="{thumb}" alt="{_e(name)}">'
+        else:
+            image = '<div class="thumb missing">no preview<br>(file changed or gone)</div>'
+        flag = ('<span class="badge flagged">Flagged</span>' if row.flagged
+                else '<span class="badge calm">Not flagged</span>')
+        truth = ""
+        if row.label is not None:
+            truth_text = "anomalous" + (f" ({row.kind})" if row.kind else "") if row.label == 1 else "normal"
+            truth = f'<div><dt>True label</dt><dd class="truth-{row.label}">{_e(truth_text)}</dd></div>'
+        kind = "(unlabelled)" if row.label is None else ("normal" if row.label == 0 else (row.kind or ""))
+        refs = []
+        for ref, dist in zip(row.nearest, row.nearest_distances):
+            ref_name = ref.rsplit("/", 1)[-1]
+            rid = self._ref_id(Path(self.bank.reference_root) / ref)
+            picture = (f'<img src="{_BLANK}" data-ref="{rid}" alt="{_e(ref_name)}">' if rid
+                       else '<span class="refmissing">not found</span>')
+            refs.append(f'<li title="{_e(ref)}">{picture}<span class="dist">{_num(dist)}</span></li>')
+        buttons = "".join(f'<button type="button" class="mark mark-{d}" data-decision="{d}" aria-pressed="false">'
+                          f"{d}</button>" for d in DECISIONS)
+        return (
+            f'<li class="card{" is-flagged" if row.flagged else ""}" data-path="{_e(row.path)}" '
+            f'data-score="{row.score!r}" data-flagged="{"1" if row.flagged else "0"}" data-kind="{_e(kind)}">'
+            f'<div class="card-top">{image}<div class="card-info">'
+            f'<p class="rank">#{rank}</p><h3 class="name" title="{_e(row.path)}">{_e(name)}</h3>'
+            f'{folder}{flag}'
+            f'<dl class="numbers"><div><dt>Score</dt><dd>{_num(row.score)}</dd></div>'
+            f"<div><dt>p-value</dt><dd>{_p(row.p_value)}</dd></div>{truth}</dl></div></div>"
+            f'<p class="refs-title">Nearest normal references (cosine distance)</p>'
+            f'<ol class="refs">{"".join(refs)}</ol>'
+            f'<div class="decide" role="group" aria-label="Decision for {_e(name)}">{buttons}</div>'
+            f'<p class="decision-state">No decision yet</p></li>'
+        )
+
+    def _unreadable(self) -> str:
+        if not self.unreadable:
+            body = "<p>None: every file found was scored.</p>"
+        else:
+            lines = "".join(f"<tr><td><code>{_e(r.path)}</code></td><td>{_e(r.status)}</td></tr>"
+                            for r in self.unreadable)
+            body = (f'<table class="unreadable"><thead><tr><th>file</th><th>reason</th></tr></thead>'
+                    f"<tbody>{lines}</tbody></table>")
+        return (f'<section id="unreadable"><h2>Files not scored ({len(self.unreadable)})</h2>{body}</section>')
+
+
+_CSS = """
+:root{--paper:#f3f1ec;--card:#fff;--ink:#1d2433;--muted:#5b6475;--line:#d8d3c8;--accent:#17607a;
+--alarm:#b3261e;--unsure:#9a5b00;--ok:#1f7a4d;font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif}
+*{box-sizing:border-box}
+body{margin:0;background:var(--paper);color:var(--ink);line-height:1.45}
+main,.masthead,footer{max-width:1280px;margin:0 auto;padding:0 20px}
+h1{font-size:1.6rem;margin:.2rem 0 1rem}h2{font-size:1.2rem;margin:2rem 0 .8rem;padding-bottom:.3rem;
+border-bottom:2px solid var(--line)}
+code{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.85em;word-break:break-all}
+.masthead{padding-top:24px}
+.eyebrow{margin:0;text-transform:uppercase;letter-spacing:.08em;font-size:.75rem;color:var(--accent);font-weight:600}
+.facts,.metrics{display:grid;grid-template-columns:repeat(auto-fill,minmax(260px,1fr));gap:10px 24px;margin:0;
+background:var(--card);border:1px solid var(--line);border-left:6px solid var(--accent);border-radius:8px;padding:14px 18px}
+.facts dt,.metrics dt{font-size:.75rem;text-transform:uppercase;letter-spacing:.05em;color:var(--muted)}
+.facts dd,.metrics dd{margin:0}
+figure{margin:0;background:var(--card);border:1px solid var(--line);border-radius:8px;padding:10px}
+figure img{display:block;width:100%;height:auto}
+figcaption{font-size:.85rem;color:var(--muted);margin-top:6px}
+.figures{display:grid;grid-template-columns:repeat(auto-fit,minmax(280px,420px));gap:16px;margin-top:16px}
+table{border-collapse:collapse;background:var(--card);font-size:.9rem}
+th,td{border:1px solid var(--line);padding:4px 10px;text-align:left}td.num{text-align:right;font-variant-numeric:tabular-nums}
+.table-title{font-size:.85rem;color:var(--muted);margin:14px 0 4px}
+#distribution figure{max-width:860px}
+.shown-line{font-weight:600}
+.controls{display:flex;flex-wrap:wrap;gap:10px 18px;align-items:end;background:var(--card);
+border:1px solid var(--line);border-radius:8px;padding:10px 14px}
+.controls label{display:flex;flex-direction:column;font-size:.8rem;color:var(--muted);gap:2px}
+.controls label.check{flex-direction:row;align-items:center;gap:6px;font-size:.95rem;color:var(--ink);align-self:center}
+.controls input[type=number]{width:7em}
+input,select,button{font:inherit;font-size:.9rem}
+select,input[type=number]{padding:4px 6px;border:1px solid var(--line);border-radius:5px;background:#fff;color:var(--ink)}
+button{cursor:pointer;border-radius:999px;border:1px solid var(--accent);background:#fff;color:var(--accent);padding:4px 14px}
+button:hover{background:#e7f0f3}button.plain{border-color:var(--line);color:var(--muted)}
+button:focus-visible,input:focus-visible,select:focus-visible{outline:3px solid #f2b84b;outline-offset:1px}
+.toolbar{display:flex;justify-content:space-between;align-items:center;gap:12px;flex-wrap:wrap;margin:10px 0}
+.toolbar p{margin:0;color:var(--muted)}
+#export{background:var(--accent);color:#fff}
+.note{background:#fff4d6;border:1px solid #e6c46a;padding:6px 10px;border-radius:6px}
+.cards{list-style:none;padding:0;margin:0;display:grid;grid-template-columns:repeat(auto-fill,minmax(340px,1fr));gap:14px}
+.card{background:var(--card);border:1px solid var(--line);border-top:5px solid var(--line);border-radius:8px;
+padding:12px;display:flex;flex-direction:column;gap:8px}
+.card[hidden]{display:none}
+.card.is-flagged{border-top-color:var(--alarm)}
+.card-top{display:flex;gap:12px}
+.thumb{width:160px;height:160px;flex:none;object-fit:contain;background:#e9e6df;border-radius:4px}
+.thumb.missing{display:flex;align-items:center;justify-content:center;text-align:center;font-size:.8rem;color:var(--muted)}
+.card-info{min-width:0;flex:1}
+.rank{margin:0;font-size:.8rem;color:var(--muted)}
+.name{margin:0 0 4px;font-size:1rem;overflow-wrap:anywhere}
+.path{margin:0 0 6px;font-size:.75rem;color:var(--muted);overflow-wrap:anywhere}
+.badge{display:inline-block;font-size:.75rem;font-weight:700;text-transform:uppercase;letter-spacing:.06em;
+border-radius:4px;padding:2px 8px}
+.badge.flagged{background:var(--alarm);color:#fff}
+.badge.calm{border:1px solid var(--line);color:var(--muted)}
+.numbers{margin:8px 0 0;display:grid;grid-template-columns:auto auto;gap:2px 12px;font-size:.9rem}
+.numbers div{display:contents}.numbers dt{color:var(--muted)}.numbers dd{margin:0;font-variant-numeric:tabular-nums}
+.truth-1{color:var(--alarm);font-weight:600}.truth-0{color:var(--ok);font-weight:600}
+.refs-title{margin:0;font-size:.75rem;color:var(--muted)}
+.refs{list-style:none;margin:0;padding:0;display:flex;gap:6px;overflow-x:auto}
+.refs li{display:flex;flex-direction:column;align-items:center;font-size:.75rem;font-variant-numeric:tabular-nums}
+.refs img{width:60px;height:60px;object-fit:contain;background:#e9e6df;border-radius:3px}
+.refmissing{width:60px;height:60px;display:flex;align-items:center;text-align:center;font-size:.7rem;color:var(--muted);
+background:#e9e6df;border-radius:3px}
+.decide{display:flex;gap:6px;flex-wrap:wrap}
+.mark[aria-pressed=true]{color:#fff}
+.mark-normal{border-color:var(--ok);color:var(--ok)}.mark-normal[aria-pressed=true]{background:var(--ok)}
+.mark-anomalous{border-color:var(--alarm);color:var(--alarm)}.mark-anomalous[aria-pressed=true]{background:var(--alarm)}
+.mark-unsure{border-color:var(--unsure);color:var(--unsure)}.mark-unsure[aria-pressed=true]{background:var(--unsure)}
+.decision-state{margin:0;font-size:.85rem;color:var(--muted)}
+.card[data-decision]:not([data-decision=""]) .decision-state{color:var(--ink);font-weight:600}
+.caution{margin-top:2.5rem;padding-top:12px;padding-bottom:28px;border-top:2px solid var(--line)}
+.caution p:first-child{background:var(--card);border:1px solid var(--line);border-radius:8px;padding:10px 14px}
+.small{font-size:.8rem;color:var(--muted)}
+@media (max-width:600px){
+main,.masthead,footer{padding:0 10px}h1{font-size:1.3rem}
+.cards{grid-template-columns:1fr}
+.thumb{width:120px;height:120px}
+.controls input[type=number]{width:6em}
+}
+"""
+
+_JS = r"""
+(function () {
+  "use strict";
+  var data = JSON.parse(document.getElementById("oddling-data").textContent);
+  var storeKey = data.storagePrefix + data.runId;
+  var list = document.getElementById("cards");
+  var cards = Array.prototype.slice.call(list.children);
+  var $ = function (id) { return document.getElementById(id); };
+
+  // Reference thumbnails are stored once in the data block and shared by every card showing them.
+  Array.prototype.forEach.call(document.querySelectorAll("img[data-ref]"), function (img) {
+    var src = data.refs[img.getAttribute("data-ref")];
+    if (src) { img.src = src; }
+  });
+
+  var marks = {};
+  function storageFailed() { $("storage-note").hidden = false; }
+  try { marks = JSON.parse(window.localStorage.getItem(storeKey) || "{}") || {}; } catch (e) { storageFailed(); }
+  function save() {
+    try { window.localStorage.setItem(storeKey, JSON.stringify(marks)); } catch (e) { storageFailed(); }
+  }
+
+  function showMark(card) {
+    var decision = marks[card.getAttribute("data-path")] || "";
+    card.setAttribute("data-decision", decision);
+    Array.prototype.forEach.call(card.querySelectorAll(".mark"), function (b) {
+      b.setAttribute("aria-pressed", String(b.getAttribute("data-decision") === decision));
+    });
+    card.querySelector(".decision-state").textContent = decision ? "Decision: " + decision : "No decision yet";
+  }
+
+  list.addEventListener("click", function (event) {
+    var button = event.target.closest(".mark");
+    if (!button) { return; }
+    var card = button.closest(".card");
+    var path = card.getAttribute("data-path");
+    var decision = button.getAttribute("data-decision");
+    if (marks[path] === decision) { delete marks[path]; } else { marks[path] = decision; }   // second click clears
+    save();
+    showMark(card);
+    apply();
+  });
+
+  function csvField(text) {
+    return /[",\r\n]|^\s|\s$/.test(text) ? '"' + text.replace(/"/g, '""') + '"' : text;
+  }
+  function decisionsCsv() {
+    var lines = ["path,decision"];
+    cards.forEach(function (card) {   // in rank order, as on the page
+      var path = card.getAttribute("data-path");
+      if (marks[path]) { lines.push(csvField(path) + "," + marks[path]); }
+    });
+    return lines.join("\n") + "\n";
+  }
+  window.oddlingDecisionsCsv = decisionsCsv;   // for tests and for copying from the console
+
+  $("export").addEventListener("click", function () {
+    var url = URL.createObjectURL(new Blob([decisionsCsv()], {type: "text/csv"}));
+    var link = document.createElement("a");
+    link.href = url;
+    link.download = "decisions-" + data.runId + ".csv";
+    document.body.appendChild(link);
+    link.click();
+    document.body.removeChild(link);
+    setTimeout(function () { URL.revokeObjectURL(url); }, 1000);
+  });
+
+  var rankOrder = cards.slice();
+  function number(id) {
+    var input = $(id);
+    var value = input.value === "" ? NaN : Number(input.value);
+    return isFinite(value) ? value : null;
+  }
+  function apply() {
+    var flaggedOnly = $("f-flagged").checked;
+    var kind = $("f-kind") ? $("f-kind").value : "";
+    var decision = $("f-decision").value;
+    var low = number("f-min"), high = number("f-max");
+    var order = $("f-sort").value;
+    var sorted = rankOrder.slice();
+    if (order === "score-asc") { sorted.reverse(); }
+    if (order === "name") {
+      sorted.sort(function (a, b) {
+        var x = a.getAttribute("data-path"), y = b.getAttribute("data-path");
+        return x < y ? -1 : x > y ? 1 : 0;
+      });
+    }
+    var shown = 0;
+    sorted.forEach(function (card) {
+      var score = Number(card.getAttribute("data-score"));
+      var mark = marks[card.getAttribute("data-path")] || "(none)";
+      var ok = (!flaggedOnly || card.getAttribute("data-flagged") === "1")
+        && (!kind || card.getAttribute("data-kind") === kind)
+        && (!decision || mark === decision)
+        && (low === null || score >= low) && (high === null || score <= high);
+      card.hidden = !ok;
+      if (ok) { shown += 1; }
+      list.appendChild(card);
+    });
+    cards = sorted;
+    $("match-count").textContent = shown === rankOrder.length
+      ? "All " + shown + " cards shown."
+      : shown + " of " + rankOrder.length + " cards match the filters.";
+  }
+  var controls = $("controls");
+  controls.addEventListener("input", apply);
+  controls.addEventListener("change", apply);
+  controls.addEventListener("submit", function (event) { event.preventDefault(); });
+  controls.addEventListener("reset", function () { setTimeout(apply, 0); });
+
+  rankOrder.forEach(showMark);
+  apply();
+}());
+"""
+
+__all__ = ["CAUTION", "plot_score_histogram", "plots_folder", "run_id", "thumbnail_uri", "write_report"]
