@@ -7,7 +7,9 @@ Prints ratios, never asserts timings: the machine is shared and noisy.
      (PIL open, resize, crop, single-threaded, batch 32) on the same 1-MP JPEGs;
   2. exact kNN search with faiss vs scikit-learn's brute-force NearestNeighbors at bank x 1280;
   3. peak memory (RSS) of embedding N and 4N images in fresh processes: flat means streaming;
-  4. share of the compute limit: backbone FLOPs x images/s over measured fp32 GEMM FLOP/s.
+  4. share of the compute limit: backbone FLOPs x images/s over measured fp32 GEMM FLOP/s;
+  5. local mode (`fit --mode local`): fit of 200 references and scoring, ms per image, bank MB
+     (budget ~150 ms per image on 2 cores at the default coreset). `--local-only` runs just this.
 """
 from __future__ import annotations
 
@@ -118,11 +120,41 @@ def child_peak_rss(folder: Path, n: int) -> float:
     return float(out.stdout.strip().splitlines()[-1])
 
 
+def local_mode(folder: Path, n_references: int = 200, n_scored: int = 100) -> tuple[float, float, dict]:
+    """(fit ms/image, score ms/image, bank's local record) for `fit --mode local` at the default coreset."""
+    import shutil
+
+    import oddling
+
+    paths = sorted(folder.glob("*.jpg"))
+    refs, incoming = folder.parent / "local_refs", folder.parent / "local_incoming"
+    for target, chosen in ((refs, paths[:n_references]), (incoming, paths[n_references:n_references + n_scored])):
+        target.mkdir(exist_ok=True)
+        for p in chosen:
+            shutil.copy(p, target / p.name)
+    options = oddling.RunOptions(runtime="torch", use_cache=False, progress=False)
+    start = time.perf_counter()
+    bank = oddling.fit(refs, None, mode="local", target_fpr=0.1, options=options)
+    fit_ms = (time.perf_counter() - start) * 1000 / len(bank.references)
+    start = time.perf_counter()
+    result = oddling.score(incoming, bank, options=options)
+    score_ms = (time.perf_counter() - start) * 1000 / len(result.scored)
+    return fit_ms, score_ms, bank.local
+
+
+def say_local(say, folder: Path) -> None:
+    fit_ms, score_ms, info = local_mode(folder)
+    say(f"local mode, 200 references, coreset {info['coreset_fraction']}: fit {fit_ms:.0f} ms/image, "
+        f"score {score_ms:.0f} ms/image (budget ~150); bank {info['coreset_size']} of {info['n_patches']} "
+        f"patches x {info['patch_dim']} = {info['size_mb']:.1f} MB")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     parser.add_argument("--images", type=int, default=512)
     parser.add_argument("--bank", type=int, default=20000)
     parser.add_argument("--out", type=Path, default=None, help="also write the report (markdown) here")
+    parser.add_argument("--local-only", action="store_true", help="only the local-mode section (5.)")
     args = parser.parse_args()
     lines = [f"machine: {platform.platform()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
              f"torch {torch.__version__}"]
@@ -137,6 +169,9 @@ def main() -> None:
         paths = make_test_jpegs(folder, args.images)
         size_kb = np.mean([p.stat().st_size for p in paths]) / 1024
         say(f"images: {args.images} JPEGs of 1152x864, mean {size_kb:.0f} KB")
+        if args.local_only:
+            say_local(say, folder)
+            return
 
         baseline = plain_eager_loop(paths)
         say(f"plain PyTorch eager loop (single thread decode, batch 32): {baseline:.1f} img/s")
@@ -159,6 +194,7 @@ def main() -> None:
         rss_small, rss_large = child_peak_rss(folder, small), child_peak_rss(folder, large)
         say(f"peak RSS embedding {small} images: {rss_small:.0f} MB; {large} images: {rss_large:.0f} MB "
             f"(ratio {rss_large / rss_small:.2f}; 1.0 = flat, streaming)")
+        say_local(say, folder)
 
     if args.out:
         args.out.write_text("```\n" + "\n".join(lines) + "\n```\n")

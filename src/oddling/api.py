@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
+from . import __version__, local
 from .backbones import DEFAULT_BACKBONE, Backbone, load_backbone
 from .bank import Bank, check_compatible, load_bank, save_bank
 from .calibrate import cutoff_for_rate, min_calibration_size
@@ -31,6 +31,10 @@ from .results import ScoreRow, count_ok, json_number, rows_to_csv, sort_rows, wr
 from .scoring import bank_cutoff, score_vectors
 
 CALIBRATION_METHOD = "leave-one-out"
+MODES = ("global", local.MODE)
+LOCAL_CALIBRATION = (
+    "split: a seeded share of the references is held out and scored against the coreset of the others "
+    "(leave-one-out would need one coreset per reference)")
 
 
 class OddlingWarning(UserWarning):
@@ -63,20 +67,32 @@ def _folder(path, what: str) -> Path:
 
 
 def _embed_folder(folder: Path, backbone: Backbone, options: RunOptions, desc: str,
-                  exclude: tuple[Path, ...] = ()) -> EmbeddedFiles:
+                  exclude: tuple[Path, ...] = (), mode: str = "global") -> EmbeddedFiles:
     try:
         paths = discover(folder, exclude=exclude)
     except IntakeError as exc:
         raise OddlingError(exc.status) from exc
-    return _embed_paths(folder, paths, backbone, options, desc)
+    return _embed_paths(folder, paths, backbone, options, desc, mode)
 
 
-def _embed_paths(base: Path, paths: list[Path], backbone: Backbone, options: RunOptions, desc: str) -> EmbeddedFiles:
+def _embed_paths(base: Path, paths: list[Path], backbone: Backbone, options: RunOptions, desc: str,
+                 mode: str = "global") -> EmbeddedFiles:
+    if mode == local.MODE:
+        # Patch features are ~100x larger than an embedding: not cached.
+        return embed_files(base, paths, backbone, batch_size=options.batch_size, workers=options.workers,
+                           progress=options.progress, desc=desc,
+                           preprocessing=local.local_preprocessing(backbone.preprocessing),
+                           embed=lambda batch: local.patch_features(backbone.network, batch))
     cache = None
     if options.use_cache:
         cache = EmbeddingCache.open(cache_dir(options.cache_dir), backbone.fingerprint(), backbone.runtime)
     return embed_files(base, paths, backbone, batch_size=options.batch_size,
                        workers=options.workers, progress=options.progress, desc=desc, cache=cache)
+
+
+def _require_global(bank: Bank, what: str) -> None:
+    if bank.mode != "global":
+        raise OddlingError(f"{what} works on global-mode banks only; bank {bank.path or ''} is in {bank.mode} mode")
 
 
 def warn_if_few_calibration(n: int, target_fpr: float) -> None:
@@ -100,9 +116,13 @@ def calibrate_references(embeddings: np.ndarray, hashes: list[str], k: int,
                          target_fpr: float) -> tuple[np.ndarray, dict]:
     """Leave-one-out calibration scores of the references and the cutoff they give."""
     scores = leave_one_out_scores(embeddings, np.array(hashes), k)
+    return scores, calibration_record(scores, target_fpr, CALIBRATION_METHOD)
+
+
+def calibration_record(scores: np.ndarray, target_fpr: float, method: str) -> dict:
     warn_if_few_calibration(len(scores), target_fpr)
-    return scores, {
-        "method": CALIBRATION_METHOD,
+    return {
+        "method": method,
         "n": int(len(scores)),
         "target_fpr": target_fpr,
         "cutoff": json_number(cutoff_for_rate(scores, target_fpr), 12),
@@ -118,15 +138,28 @@ def fit(
     k: int = 5,
     target_fpr: float = 0.01,
     force: bool = False,
+    mode: str = "global",
+    coreset: float = 0.1,
     options: RunOptions | None = None,
 ) -> Bank:
     """Build a reference bank from a folder of normal images (and save it if `bank_path` is given).
 
-    Calibration is leave-one-out over the bank: each reference is scored against the others
-    (copies of itself excluded), which uses every image both as reference and as calibration.
+    mode "global": one embedding per image, score = mean cosine distance to the k nearest
+    references; calibration is leave-one-out over the bank: each reference is scored against the
+    others (copies of itself excluded), which uses every image both as reference and as calibration.
+
+    mode "local": patch features (see `oddling.local`), a greedy k-center coreset of `coreset`
+    times the patches, score = largest nearest-patch distance over the image; calibration is
+    split (a seeded share of the references held out), and `k` is not used.
     """
     options = options or RunOptions()
     reference_dir = _folder(reference_dir, "reference folder")
+    if mode not in MODES:
+        raise OddlingError(f"mode must be one of {', '.join(MODES)}, got: {mode!r}")
+    if not 0.0 < coreset <= 1.0:
+        raise OddlingError(f"coreset must be in (0, 1], got: {coreset}")
+    if mode == local.MODE:
+        k = 1
     if k < 1:
         raise OddlingError(f"k must be >= 1, got: {k}")
     target_fpr = _check_rate(target_fpr)
@@ -134,32 +167,52 @@ def fit(
         raise OddlingError(f"{bank_path} already exists; pass --force (force=True) to replace it")
     net = load_backbone(backbone, options.cache_dir, options.runtime)
     exclude = (Path(bank_path),) if bank_path is not None else ()
-    embedded = _embed_folder(reference_dir, net, options, "embedding references", exclude)
+    embedded = _embed_folder(reference_dir, net, options, "embedding references", exclude, mode)
     usable = embedded.ok_records
     skipped = [{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK]
     distinct = len({r.sha256 for r in usable})
+    if mode == local.MODE and distinct < 2 * local.MIN_CALIBRATION:
+        raise OddlingError(f"{reference_dir} has {distinct} distinct usable images; local mode needs at least "
+                           f"{2 * local.MIN_CALIBRATION} (half of them at most are held out to calibrate)")
     if distinct < k + 1:
         detail = f"; {len(skipped)} skipped (first: {skipped[0]['path']}: {skipped[0]['status']})" if skipped else ""
         raise OddlingError(
             f"{reference_dir} has {len(usable)} usable images ({distinct} distinct); at least k+1 = {k + 1} "
             f"distinct images are needed{detail}"
         )
-    calibration_scores, calibration = calibrate_references(
-        embedded.embeddings, [r.sha256 for r in usable], k, target_fpr)
+    hashes = [r.sha256 for r in usable]
+    local_info, sources = {}, np.zeros(0, np.int64)
+    if mode == local.MODE:
+        patch_bank = local.fit_patch_bank(embedded.embeddings, hashes, coreset)
+        vectors, sources = patch_bank.patches, patch_bank.sources
+        calibration_scores = patch_bank.calibration_scores
+        calibration = calibration_record(calibration_scores, target_fpr, LOCAL_CALIBRATION)
+        calibration["references"] = [usable[i].path for i in patch_bank.calibration_rows]
+        local_info = {
+            "layers": list(local.LAYERS), "grid": int(round(np.sqrt(embedded.embeddings.shape[1]))),
+            "coreset_fraction": coreset, "n_patches": patch_bank.n_patches, "coreset_size": int(len(vectors)),
+            "patch_dim": int(vectors.shape[1]), "projection_dim": local.PROJECTION_DIM if vectors.shape[1] > local.PROJECTION_DIM else None, "seed": local.SEED,
+            "size_mb": round(vectors.nbytes / 2**20, 3),
+        }
+    else:
+        vectors = embedded.embeddings
+        calibration_scores, calibration = calibrate_references(vectors, hashes, k, target_fpr)
     bank = Bank(
         health_stats=embedded.health,
         health_fences=fences_from_table(embedded.health),
         backbone=net.fingerprint(),
-        mode="global",
+        mode=mode,
         k=k,
         references=[{"path": r.path, "sha256": r.sha256} for r in usable],
-        embeddings=embedded.embeddings,
+        embeddings=vectors,
         calibration_scores=calibration_scores,
         calibration=calibration,
         reference_root=str(reference_dir.resolve()),
         tool_version=__version__,
         created=_dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat(),
         skipped=skipped,
+        local=local_info,
+        patch_sources=sources,
     )
     if bank_path is not None:
         save_bank(bank, bank_path, force=force)
@@ -218,6 +271,40 @@ class ScoreResult:
     def write_csv(self, path: str | os.PathLike, force: bool = False) -> Path:
         return write_text(Path(path), self.to_csv(), force=force)
 
+    def anomaly_map(self, path: str) -> np.ndarray:
+        """Local mode: the (height, width) anomaly map of the scored file `path` (as in the rows),
+        nearest-patch distance per pixel, smoothed; same units as the score."""
+        return anomaly_map(self.bank, self.root, next(r for r in self.rows if r.path == path))
+
+    def write_maps(self, out_dir: str | os.PathLike) -> list[Path]:
+        """Local mode: one heatmap overlay PNG per scored file, at its relative path with ".png"
+        appended (kept as is for a .png), so a.jpg and a.png never overwrite each other. Colours
+        run from 0 to the batch's highest score, so maps of one batch compare."""
+        if self.bank.mode != local.MODE:
+            raise OddlingError("anomaly maps need a local-mode bank (oddling fit --mode local)")
+        from .intake import load_rgb
+
+        out, written = Path(out_dir), []
+        vmax = max((r.score for r in self.scored), default=1.0)
+        for row in self.scored:
+            target = out / (row.path if row.path.lower().endswith(".png") else f"{row.path}.png")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            image = load_rgb(self.root / row.path)
+            local.overlay(image, anomaly_map(self.bank, self.root, row, image.size), vmax).save(target)
+            written.append(target)
+        return written
+
+
+def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | None = None) -> np.ndarray:
+    if row.anomaly_grid is None:
+        raise OddlingError(f"{row.path} has no anomaly map (needs a local-mode bank and a readable image)")
+    if size is None:
+        from .intake import load_rgb
+
+        size = load_rgb(root / row.path).size   # as decoded: EXIF orientation applied
+    crop = bank.backbone["preprocessing"]["crop"]
+    return local.upsample_map(row.anomaly_grid, size, crop)
+
 
 def _score_embedded(bank: Bank, embedded: EmbeddedFiles, target_fpr: float | None) -> tuple[list[ScoreRow], float]:
     vs = score_vectors(bank, embedded.embeddings, target_fpr)
@@ -232,6 +319,8 @@ def _score_embedded(bank: Bank, embedded: EmbeddedFiles, target_fpr: float | Non
             row.flagged = bool(vs.flagged[i])
             row.nearest = [bank.references[j]["path"] for j in vs.neighbour_rows[i]]
             row.nearest_distances = [float(d) for d in vs.neighbour_distances[i]]
+            if vs.maps is not None:
+                row.anomaly_grid = vs.maps[i]
         rows.append(row)
     return rows, vs.cutoff
 
@@ -246,7 +335,8 @@ def score(
 ) -> ScoreResult:
     """Score every file under `incoming_dir` against the bank.
 
-    score = mean cosine distance to the bank's k nearest references (higher = more anomalous);
+    score = mean cosine distance to the bank's k nearest references (higher = more anomalous), or
+    for a local-mode bank the largest nearest-patch distance (maps: `ScoreResult.anomaly_map`);
     p_value = conformal p-value against the bank's calibration scores; flagged = p_value <=
     target_fpr (the bank's rate unless overridden).
     """
@@ -258,7 +348,7 @@ def score(
         warn_if_few_calibration(len(bank.calibration_scores), target_fpr)
     net = _load_matching_backbone(bank, backbone, options)
     exclude = (bank.path,) if bank.path else ()
-    embedded = _embed_folder(incoming_dir, net, options, "scoring", exclude)
+    embedded = _embed_folder(incoming_dir, net, options, "scoring", exclude, bank.mode)
     rows, cutoff = _score_embedded(bank, embedded, target_fpr)
     rate, _ = bank_cutoff(bank, target_fpr)
     return ScoreResult(sort_rows(rows), bank, rate, cutoff, incoming_dir)
@@ -327,7 +417,7 @@ def evaluate(
         target_fpr = _check_rate(target_fpr)
     net = _load_matching_backbone(bank, None, options)
     exclude = (bank.path,) if bank.path else ()
-    embedded = _embed_folder(test_dir, net, options, "evaluating", exclude)
+    embedded = _embed_folder(test_dir, net, options, "evaluating", exclude, bank.mode)
     rows, cutoff = _score_embedded(bank, embedded, target_fpr)
     table = read_labels_csv(Path(labels_csv)) if labels_csv else None
     for row in rows:
@@ -400,6 +490,7 @@ def bank_add(
     """
     options = options or RunOptions()
     bank = load_bank(bank_path)
+    _require_global(bank, "bank add")
     source = Path(source)
     net = _load_matching_backbone(bank, None, options)
     if source.is_dir():
@@ -438,6 +529,7 @@ def bank_add(
 def bank_remove(bank_path: str | os.PathLike, paths: list[str]) -> dict:
     """Remove references by their bank path (as `bank info` / `audit` print them); recalibrate."""
     bank = load_bank(bank_path)
+    _require_global(bank, "bank remove")
     wanted = set(paths)
     keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
     found = {bank.references[i]["path"] for i in range(bank.size)} & wanted
@@ -487,6 +579,7 @@ def drift(
     options = options or RunOptions()
     incoming_dir = _folder(incoming_dir, "incoming folder")
     bank = _as_bank(bank)
+    _require_global(bank, "drift")
     net = _load_matching_backbone(bank, None, options)
     embedded = _embed_folder(incoming_dir, net, options, "embedding batch", (bank.path,) if bank.path else ())
     n = len(embedded.embeddings)
@@ -535,6 +628,7 @@ def audit(bank: Bank | str | os.PathLike) -> dict:
     from .reference_audit import NEAR_DUPLICATE_COSINE, audit_bank
 
     bank = _as_bank(bank)
+    _require_global(bank, "audit")
     findings = audit_bank(bank)
     return {"bank": str(bank.path) if bank.path else None, "n_references": bank.size,
             "near_duplicate_cosine": NEAR_DUPLICATE_COSINE, "findings": [f.to_dict() for f in findings]}

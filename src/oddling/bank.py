@@ -22,6 +22,7 @@ METADATA_FILE = "bank.json"
 EMBEDDINGS_FILE = "embeddings.npy"
 CALIBRATION_FILE = "calibration_scores.npy"
 HEALTH_FILE = "health_stats.npy"
+SOURCES_FILE = "patch_sources.npy"   # local mode: reference row each bank patch came from
 HISTORY_FILE = "drift_history.jsonl"   # appended by `oddling drift`; carried over when a bank is replaced
 
 
@@ -36,7 +37,9 @@ class Bank:
     references : list of dict
         One entry per embedded reference image, in embedding-row order: path (relative to
         `reference_root`, POSIX), sha256.
-    embeddings : ndarray (n, d) float32, L2-normalised.
+    mode : str
+        "global" (one L2-normalised embedding per reference) or "local" (patch features).
+    embeddings : ndarray (n, d) float32, L2-normalised; in local mode (m, c) coreset patches.
     calibration_scores : ndarray (n_cal,) float64, scores of known-normal images.
     calibration : dict
         method, target_fpr, cutoff (flag when score > cutoff), n.
@@ -45,6 +48,10 @@ class Bank:
         Tukey fences per statistic, fitted on the references (health.fit_fences).
     skipped : list of dict
         Reference files that could not be used: path, status.
+    local : dict
+        Local mode only: layers, grid, coreset fraction, patches before and after the coreset,
+        patch dimension, how calibration was done.
+    patch_sources : ndarray (m,) int64, local mode: the reference row of each bank patch.
     """
 
     backbone: dict
@@ -60,6 +67,8 @@ class Bank:
     health_stats: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
     health_fences: dict = field(default_factory=dict)
     skipped: list[dict] = field(default_factory=list)
+    local: dict = field(default_factory=dict)
+    patch_sources: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
     path: Path | None = None
 
     @property
@@ -81,7 +90,7 @@ class Bank:
             "n_references": self.size,
             "references": self.references,
             "skipped": self.skipped,
-        }
+        } | ({"local": self.local} if self.mode == "local" else {})
 
 
 def is_bank(path: Path) -> bool:
@@ -102,6 +111,8 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
         np.save(tmp / EMBEDDINGS_FILE, np.ascontiguousarray(bank.embeddings, dtype=np.float32))
         np.save(tmp / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
         np.save(tmp / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
+        if bank.mode == "local":
+            np.save(tmp / SOURCES_FILE, np.asarray(bank.patch_sources, dtype=np.int64))
         # Metadata last: a folder without bank.json is never taken for a bank.
         with open(tmp / METADATA_FILE, "w", encoding="utf-8") as f:
             json.dump(bank.metadata(), f, indent=2)
@@ -144,12 +155,15 @@ def load_bank(path: str | os.PathLike) -> Bank:
         embeddings = np.load(folder / EMBEDDINGS_FILE, allow_pickle=False)
         calibration_scores = np.load(folder / CALIBRATION_FILE, allow_pickle=False)
         health_stats = np.load(folder / HEALTH_FILE, allow_pickle=False)
+        local = meta.get("local", {}) if meta.get("mode") == "local" else {}
+        sources = np.load(folder / SOURCES_FILE, allow_pickle=False) if local else np.zeros(0, np.int64)
     except (OSError, ValueError) as exc:
         raise OddlingError(f"bank {folder} is damaged: {exc}") from exc
-    if embeddings.shape != (meta["n_references"], meta["backbone"]["embedding_dim"]):
+    expected = ((local["coreset_size"], local["patch_dim"]) if local
+                else (meta["n_references"], meta["backbone"]["embedding_dim"]))
+    if embeddings.shape != expected or (local and sources.shape != (expected[0],)):
         raise OddlingError(
-            f"bank {folder} is damaged: embeddings have shape {embeddings.shape}, metadata says "
-            f"({meta['n_references']}, {meta['backbone']['embedding_dim']})"
+            f"bank {folder} is damaged: embeddings have shape {embeddings.shape}, metadata says {expected}"
         )
     return Bank(
         backbone=meta["backbone"],
@@ -165,6 +179,8 @@ def load_bank(path: str | os.PathLike) -> Bank:
         health_stats=health_stats,
         health_fences=meta.get("health_fences", {}),
         skipped=meta.get("skipped", []),
+        local=local,
+        patch_sources=sources,
         path=folder,
     )
 

@@ -92,18 +92,27 @@ def main():
               help="Neighbours averaged into each score.")
 @click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
               show_default=True, help="False-alarm rate on normal images that sets the flag cutoff.")
+@click.option("--mode", type=click.Choice(api.MODES), default="global", show_default=True,
+              help="global: whole-image similarity; local: patch-level, finds small defects and maps them.")
+@click.option("--coreset", type=click.FloatRange(0, 1, min_open=True), default=0.1, show_default=True,
+              help="Local mode: share of reference patches kept in the bank (greedy k-center).")
 @click.option("--force", is_flag=True, help="Replace an existing bank.")
 @run_options
 @user_errors
-def fit(reference_dir, bank_path, backbone, k, target_fpr, force, **run):
+def fit(reference_dir, bank_path, backbone, k, target_fpr, mode, coreset, force, **run):
     """Build a reference bank from REFERENCE_DIR, a folder of known-normal images."""
     bank = api.fit(reference_dir, bank_path, backbone=backbone, k=k, target_fpr=target_fpr,
-                   force=force, options=_options(**run))
+                   mode=mode, coreset=coreset, force=force, options=_options(**run))
     cutoff = bank.calibration["cutoff"]
     click.echo(
         f"Bank written to {bank_path}: {bank.size} references, backbone {bank.backbone['id']}, k={bank.k}, "
         f"cutoff {'none (too few images)' if cutoff is None else _num(cutoff, 4)} "
         f"at target false-alarm rate {target_fpr}.", err=True)
+    if bank.mode == "local":
+        info = bank.local
+        click.echo(f"Local mode: {info['coreset_size']} of {info['n_patches']} patches kept (coreset "
+                   f"{info['coreset_fraction']}, {info['size_mb']} MB); {bank.calibration['n']} references "
+                   "held out to calibrate.", err=True)
     if bank.skipped:
         click.echo(f"{len(bank.skipped)} files skipped (listed in {bank_path}/bank.json):", err=True)
         for item in bank.skipped[:10]:
@@ -122,10 +131,13 @@ def fit(reference_dir, bank_path, backbone, k, target_fpr, force, **run):
 @click.option("--fail-on-flagged", is_flag=True, help="Exit 1 when any image is flagged.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Also write the review page (self-contained HTML) here.")
+@click.option("--maps", "maps_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Local-mode banks: write a heatmap overlay PNG per image into this folder.")
 @click.option("--force", is_flag=True, help="Overwrite existing output files.")
 @run_options
 @user_errors
-def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, force, **run):
+def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, maps_dir, force,
+          **run):
     """Score every image in INCOMING_DIR against a bank."""
     for path in (out_csv, report_path):
         if path is not None and path.exists() and not force:
@@ -133,6 +145,9 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
     result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, options=_options(**run))
     result.write_csv(out_csv, force=True)
     summary = result.summary() | {"out": str(out_csv)}
+    if maps_dir is not None:
+        result.write_maps(maps_dir)
+        summary["maps"] = str(maps_dir)
     if report_path is not None:
         from .report import write_report
 

@@ -78,16 +78,20 @@ def embed_files(
     progress: bool = True,
     desc: str = "embedding",
     cache: EmbeddingCache | None = None,
+    preprocessing: Preprocessing | None = None,
+    embed=None,
 ) -> EmbeddedFiles:
     """Embed `paths` (files under `root`) in order; every file gets a record, readable or not.
 
     With a cache, files whose content was embedded before are not decoded again, and new
-    vectors are saved as the run goes (also when it is interrupted).
+    vectors are saved as the run goes (also when it is interrupted). `preprocessing` and
+    `embed` (batch -> one array per image) replace the backbone's own, as local mode does.
     """
     if batch_size < 1:
         raise ValueError(f"batch_size must be >= 1, got: {batch_size}")
     root = Path(root)
-    prep = backbone.preprocessing
+    prep = preprocessing or backbone.preprocessing
+    embed = embed or backbone.embed
     records: list[FileRecord] = []
     vectors: list[np.ndarray | None] = []
     health: list[np.ndarray] = []
@@ -117,7 +121,7 @@ def embed_files(
                         health.append(stats)
                         to_embed.append((len(vectors) - 1, digest, array))
                 if to_embed:
-                    embedded = backbone.embed(np.stack([a for _, _, a in to_embed]))
+                    embedded = embed(np.stack([a for _, _, a in to_embed]))
                     for (row, digest, _), vec in zip(to_embed, embedded):
                         vectors[row] = vec
                         if cache is not None:

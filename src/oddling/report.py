@@ -106,9 +106,10 @@ def write_report(
     if metrics is not None:
         figures.update(_evaluation_plots(result, metrics, plots))
     thumbs = _thumbnails(shown, scored_root, Path(bank.reference_root), thumb_px)
+    heatmaps = _heatmaps(shown, scored, scored_root, bank, thumb_px)
 
     page = _Page(rows=rows, shown=shown, bank=bank, scored_root=scored_root, metrics=metrics,
-                 target_fpr=target_fpr, cutoff=cutoff, title=title, thumbs=thumbs,
+                 target_fpr=target_fpr, cutoff=cutoff, title=title, thumbs=thumbs, heatmaps=heatmaps,
                  figures={k: _png_uri(p) for k, p in figures.items()}, plots_dir=plots.name)
     return write_text(out_html, page.render(), force=True)
 
@@ -192,6 +193,32 @@ def thumbnail_uri(path: Path, px: int) -> str | None:
     return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
+def heatmap_uri(path: Path, row: ScoreRow, crop: int, px: int, vmax: float) -> str | None:
+    """Local mode: a JPEG data URI of the image with its anomaly map over it, like the thumbnail."""
+    from .local import overlay, upsample_map
+
+    try:
+        image = load_rgb(path, min_side=px)
+    except IntakeError:
+        return None
+    image.thumbnail((px, px), Image.Resampling.LANCZOS)
+    buffer = io.BytesIO()
+    overlay(image, upsample_map(row.anomaly_grid, image.size, crop), vmax).save(buffer, "JPEG", quality=_JPEG_QUALITY)
+    return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
+
+
+def _heatmaps(shown: list[ScoreRow], scored: list[ScoreRow], scored_root: Path, bank: Bank, px: int) -> dict[str, str | None]:
+    """By row path; colours from 0 to the highest score shown, so the cards compare."""
+    with_maps = [r for r in shown if r.anomaly_grid is not None]
+    if not with_maps:
+        return {}
+    vmax = max(r.score for r in scored)
+    crop = bank.backbone["preprocessing"]["crop"]
+    with ThreadPoolExecutor(max_workers=min(8, os.cpu_count() or 1)) as pool:
+        uris = pool.map(lambda r: heatmap_uri(scored_root / r.path, r, crop, px, vmax), with_maps)
+        return dict(zip([r.path for r in with_maps], uris))
+
+
 def _thumbnails(shown: list[ScoreRow], scored_root: Path, reference_root: Path, px: int) -> dict[Path, str | None]:
     """One thumbnail per distinct file, so a reference near many cards is embedded once."""
     files = list(dict.fromkeys([scored_root / r.path for r in shown]
@@ -233,10 +260,11 @@ _BLANK = "data:image/gif;base64,R0lGODlhAQABAIAAAAAAAP///yH5BAEAAAAALAAAAAABAAEA
 
 class _Page:
     def __init__(self, *, rows, shown, bank, scored_root, metrics, target_fpr, cutoff, title, thumbs, figures,
-                 plots_dir):
+                 plots_dir, heatmaps=None):
         self.rows, self.shown, self.bank, self.metrics = rows, shown, bank, metrics
         self.scored_root, self.target_fpr, self.cutoff = scored_root, target_fpr, cutoff
         self.thumbs, self.figures, self.plots_dir = thumbs, figures, plots_dir
+        self.heatmaps = heatmaps or {}
         self.scored = [r for r in rows if r.score is not None]
         self.unreadable = [r for r in rows if r.score is None]
         self.labelled = any(r.label is not None for r in rows)
@@ -396,6 +424,12 @@ class _Page:
             self.ref_uris[self.ref_ids[path]] = uri
         return self.ref_ids[path]
 
+    @property
+    def _refs_title(self) -> str:
+        if self.bank.mode == "local":
+            return "Reference with the patch nearest to the worst spot (nearest-patch distance)"
+        return "Nearest normal references (cosine distance)"
+
     def _card(self, rank: int, row: ScoreRow) -> str:
         thumb = self.thumbs.get(self.scored_root / row.path)
         name = row.path.rsplit("/", 1)[-1]
@@ -404,6 +438,9 @@ class _Page:
             image = f'<img class="thumb" src="{thumb}" alt="{_e(name)}">'
         else:
             image = '<div class="thumb missing">no preview<br>(file changed or gone)</div>'
+        heat = self.heatmaps.get(row.path)
+        heatmap = (f'<p class="refs-title">Anomaly map (red = far from every normal patch)</p>'
+                   f'<img class="heatmap" src="{heat}" alt="anomaly map of {_e(name)}">') if heat else ""
         flag = ('<span class="badge flagged">Flagged</span>' if row.flagged
                 else '<span class="badge calm">Not flagged</span>')
         truth = ""
@@ -427,8 +464,8 @@ class _Page:
             f'<p class="rank">#{rank}</p><h3 class="name" title="{_e(row.path)}">{_e(name)}</h3>'
             f'{folder}{flag}'
             f'<dl class="numbers"><div><dt>Score</dt><dd>{_num(row.score)}</dd></div>'
-            f"<div><dt>p-value</dt><dd>{_p(row.p_value)}</dd></div>{truth}</dl></div></div>"
-            f'<p class="refs-title">Nearest normal references (cosine distance)</p>'
+            f"<div><dt>p-value</dt><dd>{_p(row.p_value)}</dd></div>{truth}</dl></div></div>{heatmap}"
+            f'<p class="refs-title">{self._refs_title}</p>'
             f'<ol class="refs">{"".join(refs)}</ol>'
             f'<div class="decide" role="group" aria-label="Decision for {_e(name)}">{buttons}</div>'
             f'<p class="decision-state">No decision yet</p></li>'
@@ -503,6 +540,7 @@ border-radius:4px;padding:2px 8px}
 .numbers div{display:contents}.numbers dt{color:var(--muted)}.numbers dd{margin:0;font-variant-numeric:tabular-nums}
 .truth-1{color:var(--alarm);font-weight:600}.truth-0{color:var(--ok);font-weight:600}
 .refs-title{margin:0;font-size:.75rem;color:var(--muted)}
+.heatmap{width:160px;height:160px;object-fit:contain;border-radius:4px;display:block}
 .refs{list-style:none;margin:0;padding:0;display:flex;gap:6px;overflow-x:auto}
 .refs li{display:flex;flex-direction:column;align-items:center;font-size:.75rem;font-variant-numeric:tabular-nums}
 .refs img{width:60px;height:60px;object-fit:contain;background:#e9e6df;border-radius:3px}

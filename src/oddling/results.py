@@ -25,6 +25,7 @@ class ScoreRow:
     health: str = ""             # "ok" or the image statistics out of the references' range
     label: int | None = None     # evaluate only: 1 anomalous, 0 normal
     kind: str | None = None      # evaluate only: anomaly kind (subfolder name) or "normal"
+    anomaly_grid: object = None  # local mode: (G, G) nearest-patch distances; see ScoreResult.anomaly_map
 
 
 def sort_rows(rows: list[ScoreRow]) -> list[ScoreRow]:

@@ -1,5 +1,6 @@
-"""Score embeddings against a bank: mean distance to the k nearest references, conformal
-p-value against the bank's calibration scores, flag at the cutoff."""
+"""Score embeddings against a bank: mean distance to the k nearest references (local mode: the
+largest nearest-patch distance), conformal p-value against the bank's calibration scores, flag
+at the cutoff."""
 from __future__ import annotations
 
 from dataclasses import dataclass
@@ -19,6 +20,7 @@ class VectorScores:
     neighbour_rows: np.ndarray    # (n, k) rows of bank.references, nearest first
     neighbour_distances: np.ndarray  # (n, k)
     cutoff: float
+    maps: np.ndarray | None = None   # local mode: (n, G, G) nearest-patch distance per location
 
 
 def bank_cutoff(bank: Bank, target_fpr: float | None = None) -> tuple[float, float]:
@@ -35,6 +37,8 @@ def score_vectors(bank: Bank, vectors: np.ndarray, target_fpr: float | None = No
         empty = np.zeros(0)
         return VectorScores(empty, empty, np.zeros(0, bool), np.zeros((0, bank.k), np.int64),
                             np.zeros((0, bank.k)), cutoff)
+    if bank.mode == "local":
+        return _score_patches(bank, vectors, cutoff)
     distances, rows = ExactCosineIndex(bank.embeddings).search(vectors, bank.k)
     scores = mean_knn_distance(distances)
     return VectorScores(
@@ -44,4 +48,21 @@ def score_vectors(bank: Bank, vectors: np.ndarray, target_fpr: float | None = No
         neighbour_rows=rows,
         neighbour_distances=distances.astype(np.float64),
         cutoff=cutoff,
+    )
+
+
+def _score_patches(bank: Bank, features: np.ndarray, cutoff: float) -> VectorScores:
+    """Local mode: score = largest nearest-patch distance; the one "neighbour" is the reference
+    whose patch is nearest to the worst location."""
+    from .local import PatchIndex, score_patches
+
+    ps = score_patches(PatchIndex(bank.embeddings), bank.patch_sources, features)
+    return VectorScores(
+        scores=ps.scores,
+        p_values=conformal_p_values(bank.calibration_scores, ps.scores),
+        flagged=flag(ps.scores, cutoff),
+        neighbour_rows=ps.worst_source[:, None],
+        neighbour_distances=ps.scores[:, None],
+        cutoff=cutoff,
+        maps=ps.maps,
     )
