@@ -165,7 +165,8 @@ def fit(
     target_fpr = _check_rate(target_fpr)
     if bank_path is not None and Path(bank_path).exists() and not force:
         raise OddlingError(f"{bank_path} already exists; pass --force (force=True) to replace it")
-    net = load_backbone(backbone, options.cache_dir, options.runtime)
+    # Patch features come from the PyTorch network's inner stages: no ONNX export to make.
+    net = load_backbone(backbone, options.cache_dir, "torch" if mode == local.MODE else options.runtime)
     exclude = (Path(bank_path),) if bank_path is not None else ()
     embedded = _embed_folder(reference_dir, net, options, "embedding references", exclude, mode)
     usable = embedded.ok_records
@@ -229,7 +230,8 @@ def _load_matching_backbone(bank: Bank, backbone: str | None, options: RunOption
             f"bank {bank.path or ''} was made with backbone {bank.backbone['id']!r}, not {backbone!r}; "
             "scores from different backbones cannot be compared"
         )
-    net = load_backbone(bank.backbone["id"], options.cache_dir, options.runtime)
+    runtime = "torch" if bank.mode == local.MODE else options.runtime
+    net = load_backbone(bank.backbone["id"], options.cache_dir, runtime)
     check_compatible(bank, net.fingerprint())
     return net
 
