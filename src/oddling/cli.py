@@ -58,6 +58,22 @@ def run_options(func):
     return func
 
 
+# Options several commands share, declared once.
+bank_option = click.option(
+    "--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+    help="Bank folder made by `oddling fit`.")
+target_fpr_override = click.option(
+    "--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
+    help="Override the bank's false-alarm rate for this run.")
+
+
+def _refuse_existing(*paths: Path | None, force: bool) -> None:
+    """Check outputs before any work starts, so a refusal costs nothing."""
+    for path in paths:
+        if path is not None and path.exists() and not force:
+            raise OddlingError(f"{path} already exists; pass --force to overwrite it")
+
+
 def _options(cache_dir, runtime, batch_size, workers, no_cache, quiet) -> api.RunOptions:
     return api.RunOptions(cache_dir=cache_dir, runtime=runtime, batch_size=batch_size, workers=workers,
                           progress=not quiet, use_cache=not no_cache)
@@ -121,12 +137,10 @@ def fit(reference_dir, bank_path, backbone, k, target_fpr, mode, coreset, force,
 
 @main.command()
 @click.argument("incoming_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
-              help="Bank folder made by `oddling fit`.")
+@bank_option
 @click.option("--out", "out_csv", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="CSV to write, one row per file, highest score first.")
-@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
-              help="Override the bank's false-alarm rate for this run.")
+@target_fpr_override
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
 @click.option("--fail-on-flagged", is_flag=True, help="Exit 1 when any image is flagged.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
@@ -139,9 +153,7 @@ def fit(reference_dir, bank_path, backbone, k, target_fpr, mode, coreset, force,
 def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, maps_dir, force,
           **run):
     """Score every image in INCOMING_DIR against a bank."""
-    for path in (out_csv, report_path):
-        if path is not None and path.exists() and not force:
-            raise OddlingError(f"{path} already exists; pass --force to overwrite it")
+    _refuse_existing(out_csv, report_path, force=force)
     result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, options=_options(**run))
     result.write_csv(out_csv, force=True)
     summary = result.summary() | {"out": str(out_csv)}
@@ -165,8 +177,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
 
 @main.command()
 @click.argument("test_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
-              help="Bank folder made by `oddling fit`.")
+@bank_option
 @click.option("--out-dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Folder for metrics.json, scores.csv, roc.png, pr.png.")
 @click.option("--labels", "labels_csv", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
@@ -175,8 +186,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
               help="Subfolder name that holds normal images (repeatable); every other subfolder is an anomaly kind.")
 @click.option("--beta", type=click.FloatRange(min=0, min_open=True), default=1.0, show_default=True,
               help="F-beta weight for the best-cutoff search; beta > 1 weighs recall more.")
-@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
-              help="Override the bank's false-alarm rate for this run.")
+@target_fpr_override
 @click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
 @click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
               help="Also write the review page (self-contained HTML) here.")
@@ -186,8 +196,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
 def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, report_path,
              force, **run):
     """Measure the detector on TEST_DIR, a folder of labelled images."""
-    if report_path is not None and report_path.exists() and not force:
-        raise OddlingError(f"{report_path} already exists; pass --force to overwrite it")
+    _refuse_existing(report_path, force=force)
     result = api.evaluate(test_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                           beta=beta, target_fpr=target_fpr, options=_options(**run))
     paths = result.write(out_dir, force=force)
@@ -213,8 +222,7 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
 
 @main.command()
 @click.argument("folder", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
-              help="Bank folder made by `oddling fit`.")
+@bank_option
 @click.option("--out", "out_html", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="HTML file to write; plots go to a sibling folder <name>_plots/.")
 @click.option("--labelled", is_flag=True,
@@ -225,8 +233,7 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
               help="Subfolder name that holds normal images (repeatable).")
 @click.option("--top", "top_n", type=click.IntRange(min=1), default=200, show_default=True,
               help="Cards shown in the gallery, highest scores first.")
-@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
-              help="Override the bank's false-alarm rate for this page.")
+@target_fpr_override
 @click.option("--force", is_flag=True, help="Overwrite an existing page.")
 @run_options
 @user_errors
@@ -234,8 +241,7 @@ def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top
     """Write the review page for FOLDER scored against a bank (cached embeddings make this quick)."""
     from .report import write_report
 
-    if out_html.exists() and not force:
-        raise OddlingError(f"{out_html} already exists; pass --force to overwrite it")
+    _refuse_existing(out_html, force=force)
     options = _options(**run)
     if labelled or labels_csv:
         result = api.evaluate(folder, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
@@ -357,8 +363,7 @@ def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, 
 
 
 @main.command()
-@click.option("--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
-              help="Bank to audit.")
+@bank_option
 @click.option("--json", "as_json", is_flag=True, help="Print the findings as JSON (input for `bank remove`).")
 @user_errors
 def audit(bank_path, as_json):
