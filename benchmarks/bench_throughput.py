@@ -26,7 +26,7 @@ import numpy as np
 import torch
 from PIL import Image
 
-from oddling.bench import make_test_jpegs
+from oddling.embedding.throughput import make_test_jpegs
 
 
 def plain_eager_loop(paths: list[Path], batch: int = 32) -> float:
@@ -63,7 +63,7 @@ def oddling_fit(folder: Path, n_images: int, runtime: str = "auto") -> float:
 def knn_comparison(bank_size: int, n_queries: int = 1000, k: int = 5, dim: int = 1280) -> tuple[float, float]:
     from sklearn.neighbors import NearestNeighbors
 
-    from oddling.knn import ExactCosineIndex
+    from oddling.index.exact import ExactCosineIndex
 
     rng = np.random.default_rng(1)
     bank = rng.standard_normal((bank_size, dim)).astype(np.float32)
@@ -111,7 +111,7 @@ def child_peak_rss(folder: Path, n: int) -> float:
     """Peak RSS (MB) of a fresh process that embeds the first n images."""
     code = (
         "import resource, sys; from pathlib import Path; from oddling.backbones import load_backbone; "
-        "from oddling.embed import embed_files; "
+        "from oddling.embedding.runner import embed_files; "
         f"folder = Path({str(folder)!r}); paths = sorted(folder.glob('*.jpg'))[:{n}]; "
         "embed_files(folder, paths, load_backbone(runtime='auto'), progress=False); "
         "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)"

@@ -7,7 +7,7 @@ It generates the demo's invented tile scenario into ./example-run/ first.
 from pathlib import Path
 
 import oddling
-from oddling.demo_scene import SceneCounts, generate_scene
+from oddling.demo.scene import SceneCounts, generate_scene
 
 root = Path("example-run")
 if not root.exists():

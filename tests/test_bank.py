@@ -4,7 +4,7 @@ import json
 import numpy as np
 import pytest
 
-from oddling.bank import METADATA_FILE, Bank, check_compatible, load_bank, save_bank
+from oddling.bank.store import METADATA_FILE, Bank, check_compatible, load_bank, save_bank
 from oddling.errors import OddlingError
 
 
@@ -55,7 +55,7 @@ def test_force_never_replaces_a_folder_that_is_not_a_bank(tmp_path):
 
 
 def test_crash_while_writing_leaves_no_bank(tmp_path, monkeypatch):
-    import oddling.bank as bank_module
+    import oddling.bank.store as bank_module
 
     def boom(*args, **kwargs):
         raise RuntimeError("disk full")

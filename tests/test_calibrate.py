@@ -9,7 +9,7 @@ import math
 import numpy as np
 import pytest
 
-from oddling.calibrate import conformal_p_values, cutoff_for_rate, flag, min_calibration_size
+from oddling.detectors.conformal import conformal_p_values, cutoff_for_rate, flag, min_calibration_size
 
 
 def p_value_loop(cal, s):

@@ -5,8 +5,8 @@ import pytest
 from click.testing import CliRunner
 
 from oddling.cli import main
-from oddling.demo import MARKER, run_demo
-from oddling.demo_scene import SceneCounts
+from oddling.demo.run import MARKER, run_demo
+from oddling.demo.scene import SceneCounts
 
 SMALL = SceneCounts(reference=40, incoming_normal=8, incoming_anomalous=6, test_normal=12, test_per_kind=3)
 
@@ -31,7 +31,7 @@ def test_demo_refuses_a_folder_it_did_not_make(tmp_path):
 
 
 def test_demo_json_is_parseable(tmp_path, monkeypatch):
-    import oddling.demo as demo
+    import oddling.demo.run as demo
 
     monkeypatch.setattr(demo, "SceneCounts", lambda: SMALL)
     result = CliRunner().invoke(main, ["demo", str(tmp_path / "d"), "-q", "--json"])

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from oddling.demo_scene import ANOMALY_KINDS, TRUTH_FILE, SceneCounts, generate_scene, render_tile
+from oddling.demo.scene import ANOMALY_KINDS, TRUTH_FILE, SceneCounts, generate_scene, render_tile
 
 SMALL = SceneCounts(reference=3, incoming_normal=3, incoming_anomalous=7, test_normal=2, test_per_kind=1)
 SIZE = 96

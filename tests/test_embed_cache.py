@@ -93,7 +93,7 @@ def test_damaged_chunk_is_ignored_and_recomputed(digits_folders, digits_bank, tm
 
 
 def test_cache_key_depends_on_runtime_and_weights():
-    from oddling.embed_cache import cache_key
+    from oddling.embedding.cache import cache_key
 
     fp = {"id": "x", "weights_sha256": "a" * 64}
     assert cache_key(fp, "onnx") != cache_key(fp, "torch")

@@ -11,7 +11,7 @@ import pytest
 from PIL import Image, ImageEnhance, ImageFilter
 from skimage import data
 
-from oddling.health import (
+from oddling.data.health import (
     STATS,
     fit_fences,
     health_findings,

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from oddling.intake import IMAGE_SUFFIXES, IntakeError, discover, load_rgb, sha256_file
+from oddling.data.intake import IMAGE_SUFFIXES, IntakeError, discover, load_rgb, sha256_file
 
 RED, BLUE = (220, 30, 30), (30, 30, 220)
 

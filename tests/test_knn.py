@@ -3,7 +3,7 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from oddling.knn import ExactCosineIndex, knn_numpy, leave_one_out_scores, mean_knn_distance
+from oddling.index.exact import ExactCosineIndex, knn_numpy, leave_one_out_scores, mean_knn_distance
 
 
 def unit(rng, n, d):
@@ -30,7 +30,7 @@ def test_numpy_reference_equals_scipy():
 
 
 def test_faiss_equals_numpy_in_many_chunks(monkeypatch):
-    import oddling.knn as knn
+    import oddling.index.exact as knn
 
     monkeypatch.setattr(knn, "QUERY_CHUNK", 16)   # force several faiss calls
     rng = np.random.default_rng(2)

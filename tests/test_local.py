@@ -14,9 +14,9 @@ from scipy.spatial.distance import cdist
 from sklearn.metrics import roc_auc_score
 
 import oddling
-from oddling.bank import load_bank
+from oddling.bank.store import load_bank
 from oddling.cli import main
-from oddling.local import greedy_k_center
+from oddling.detectors.patch import greedy_k_center
 
 SIDE = 160
 N_REFERENCES = 50
@@ -183,7 +183,7 @@ def test_greedy_k_center_within_factor_two_of_optimal_radius(seed):
 
 
 def test_report_cards_show_the_anomaly_map(scenario, local_result, tmp_path):
-    from oddling.report import write_report
+    from oddling.reporting.page import write_report
 
     page = write_report(tmp_path / "review.html", local_result).read_text()
     assert page.count('class="heatmap"') == len(local_result.scored)   # one per card (48 < top_n)

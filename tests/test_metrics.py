@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 from sklearn import metrics as skm
 
-from oddling import metrics as m
-from oddling.plots import plot_pr, plot_roc
+from oddling.evaluation import metrics as m
+from oddling.reporting.plots import plot_pr, plot_roc
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 

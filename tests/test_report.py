@@ -19,11 +19,11 @@ from browser import (
 from PIL import Image
 
 from oddling.api import EvaluationResult, ScoreResult
-from oddling.bank import Bank
+from oddling.bank.store import Bank
 from oddling.errors import OddlingError
-from oddling.metrics import evaluation_summary
-from oddling.report import CAUTION, plots_folder, write_report
-from oddling.results import ScoreRow, sort_rows
+from oddling.evaluation.metrics import evaluation_summary
+from oddling.reporting.page import CAUTION, plots_folder, write_report
+from oddling.reporting.results import ScoreRow, sort_rows
 
 ODD_NAME = 'odd <b>&"name.png'   # must come out as text, never as markup
 N_REFS = 6

@@ -12,7 +12,7 @@ import pytest
 from scipy.spatial.distance import pdist
 from scipy.stats import binomtest
 
-from oddling.shift import (
+from oddling.evaluation.shift import (
     flagged_share_test,
     median_bandwidth,
     mmd2_unbiased,

@@ -12,7 +12,7 @@ import torch
 from oddling.backbones import load_backbone
 from oddling.backbones.manifest import get_spec
 from oddling.backbones.weights import expected_cache_path, import_weights, resolve_weights
-from oddling.intake import sha256_file
+from oddling.data.intake import sha256_file
 from oddling.errors import OddlingError
 
 CLIP_ID = "openclip-vit-b-32-laion2b"

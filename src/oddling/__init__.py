@@ -9,8 +9,8 @@ from .api import (  # noqa: E402
     EvaluationResult, OddlingWarning, RunOptions, ScoreResult, audit, bank_add, bank_info, bank_remove, drift,
     drift_history, evaluate, fit, score,
 )
-from .bank import Bank, load_bank  # noqa: E402
-from .errors import OddlingError  # noqa: E402
+from oddling.bank.store import Bank, load_bank  # noqa: E402
+from oddling.errors import OddlingError  # noqa: E402
 
 __all__ = ["__version__", "Bank", "EvaluationResult", "OddlingError", "OddlingWarning", "RunOptions", "ScoreResult",
            "audit", "bank_add", "bank_info", "bank_remove", "drift", "drift_history", "evaluate", "fit",

@@ -16,19 +16,20 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__, local
-from .backbones import DEFAULT_BACKBONE, Backbone, load_backbone
-from .bank import Bank, check_compatible, load_bank, save_bank
-from .calibrate import cutoff_for_rate, min_calibration_size
-from .embed import OK, EmbeddedFiles, embed_files
-from .embed_cache import EmbeddingCache
-from .errors import OddlingError
-from .health import STATS, fit_fences, health_findings, health_text
-from .intake import IntakeError, discover
-from .knn import leave_one_out_scores
-from .paths import cache_dir
-from .results import ScoreRow, count_ok, json_number, rows_to_csv, sort_rows, write_text
-from .scoring import bank_cutoff, score_vectors
+from oddling import __version__
+from oddling.detectors import patch as local
+from oddling.backbones import DEFAULT_BACKBONE, Backbone, load_backbone
+from oddling.bank.store import Bank, check_compatible, load_bank, save_bank
+from oddling.detectors.conformal import cutoff_for_rate, min_calibration_size
+from oddling.embedding.runner import OK, EmbeddedFiles, embed_files
+from oddling.embedding.cache import EmbeddingCache
+from oddling.errors import OddlingError
+from oddling.data.health import STATS, fit_fences, health_findings, health_text
+from oddling.data.intake import IntakeError, discover
+from oddling.index.exact import leave_one_out_scores
+from oddling.paths import cache_dir
+from oddling.reporting.results import ScoreRow, count_ok, json_number, rows_to_csv, sort_rows, write_text
+from oddling.scoring import bank_cutoff, score_vectors
 
 CALIBRATION_METHOD = "leave-one-out"
 MODES = ("global", local.MODE)
@@ -148,7 +149,7 @@ def fit(
     references; calibration is leave-one-out over the bank: each reference is scored against the
     others (copies of itself excluded), which uses every image both as reference and as calibration.
 
-    mode "local": patch features (see `oddling.local`), a greedy k-center coreset of `coreset`
+    mode "local": patch features (see `oddling.detectors.patch`), a greedy k-center coreset of `coreset`
     times the patches, score = largest nearest-patch distance over the image; calibration is
     split (a seeded share of the references held out), and `k` is not used.
     """
@@ -284,7 +285,7 @@ class ScoreResult:
         run from 0 to the batch's highest score, so maps of one batch compare."""
         if self.bank.mode != local.MODE:
             raise OddlingError("anomaly maps need a local-mode bank (oddling fit --mode local)")
-        from .intake import load_rgb
+        from oddling.data.intake import load_rgb
 
         out, written = Path(out_dir), []
         vmax = max((r.score for r in self.scored), default=1.0)
@@ -301,7 +302,7 @@ def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | N
     if row.anomaly_grid is None:
         raise OddlingError(f"{row.path} has no anomaly map (needs a local-mode bank and a readable image)")
     if size is None:
-        from .intake import load_rgb
+        from oddling.data.intake import load_rgb
 
         size = load_rgb(root / row.path).size   # as decoded: EXIF orientation applied
     crop = bank.backbone["preprocessing"]["crop"]
@@ -373,8 +374,8 @@ class EvaluationResult:
 
     def write(self, out_dir: str | os.PathLike, force: bool = False) -> dict[str, Path]:
         """metrics.json, scores.csv, roc.png, pr.png in `out_dir`; existing files need force=True."""
-        from . import metrics as m
-        from .plots import plot_pr, plot_roc
+        from oddling.evaluation import metrics as m
+        from oddling.reporting.plots import plot_pr, plot_roc
 
         out = Path(out_dir)
         names = {"metrics": "metrics.json", "scores": "scores.csv", "roc": "roc.png", "pr": "pr.png"}
@@ -407,8 +408,8 @@ def evaluate(
     Labels come from subfolders (a folder named in `normal_labels` is normal, any other is an
     anomaly kind) or from `labels_csv`. Unreadable and unlabelled files are listed, never counted.
     """
-    from .labels import label_from_folder, read_labels_csv
-    from .metrics import evaluation_summary
+    from oddling.data.labels import label_from_folder, read_labels_csv
+    from oddling.evaluation.metrics import evaluation_summary
 
     options = options or RunOptions()
     test_dir = _folder(test_dir, "test folder")
@@ -575,8 +576,8 @@ def drift(
     (Gretton et al. 2012), and the share flagged at the bank's cutoff against its target rate
     (exact binomial test). With `record`, one line per run is appended to the bank's history.
     """
-    from .bank import HISTORY_FILE
-    from .shift import flagged_share_test, mmd_permutation_test, shift_verdict
+    from oddling.bank.store import HISTORY_FILE
+    from oddling.evaluation.shift import flagged_share_test, mmd_permutation_test, shift_verdict
 
     options = options or RunOptions()
     incoming_dir = _folder(incoming_dir, "incoming folder")
@@ -615,7 +616,7 @@ def drift(
 
 
 def drift_history(bank_path: str | os.PathLike) -> list[dict]:
-    from .bank import HISTORY_FILE
+    from oddling.bank.store import HISTORY_FILE
 
     bank = load_bank(bank_path)
     path = Path(bank_path) / HISTORY_FILE
@@ -627,7 +628,7 @@ def drift_history(bank_path: str | os.PathLike) -> list[dict]:
 
 def audit(bank: Bank | str | os.PathLike) -> dict:
     """Findings about the reference set itself: outliers, duplicates, near duplicates, health."""
-    from .reference_audit import NEAR_DUPLICATE_COSINE, audit_bank
+    from oddling.evaluation.reference_audit import NEAR_DUPLICATE_COSINE, audit_bank
 
     bank = _as_bank(bank)
     _require_global(bank, "audit")

@@ -9,9 +9,10 @@ from pathlib import Path
 
 import click
 
-from . import __version__, api
-from .backbones import DEFAULT_BACKBONE, RUNTIMES, load_manifest
-from .errors import OddlingError
+from oddling import __version__
+from oddling import api
+from oddling.backbones import DEFAULT_BACKBONE, RUNTIMES, load_manifest
+from oddling.errors import OddlingError
 
 EXIT_ATTENTION = 1   # the job ran, and something a flag asked about needs attention
 EXIT_BAD_INPUT = 2   # click's convention for usage errors; we use it for bad input too
@@ -161,7 +162,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
         result.write_maps(maps_dir)
         summary["maps"] = str(maps_dir)
     if report_path is not None:
-        from .report import write_report
+        from oddling.reporting.page import write_report
 
         summary["report"] = str(write_report(report_path, result, force=True))
     if as_json:
@@ -201,7 +202,7 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
                           beta=beta, target_fpr=target_fpr, options=_options(**run))
     paths = result.write(out_dir, force=force)
     if report_path is not None:
-        from .report import write_report
+        from oddling.reporting.page import write_report
 
         write_report(report_path, result, bank=result.bank, scored_root=test_dir, force=True)
         click.echo(f"Review page: {report_path}", err=True)
@@ -239,7 +240,7 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
 @user_errors
 def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top_n, target_fpr, force, **run):
     """Write the review page for FOLDER scored against a bank (cached embeddings make this quick)."""
-    from .report import write_report
+    from oddling.reporting.page import write_report
 
     _refuse_existing(out_html, force=force)
     options = _options(**run)
@@ -262,7 +263,7 @@ def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top
 @user_errors
 def demo(directory, seed, force, as_json, **run):
     """Generate an invented tile-inspection scenario in DIRECTORY and run fit, score and evaluate on it."""
-    from .demo import run_demo
+    from oddling.demo.run import run_demo
 
     say = (lambda msg: click.echo(msg, err=True))
     out = run_demo(directory, seed=seed, force=force, options=_options(**run), log=say)
@@ -296,7 +297,7 @@ def demo(directory, seed, force, as_json, **run):
 @user_errors
 def bench(backbone, n_images, estimate_for, as_json, cache_dir, runtime, batch_size, workers, no_cache, quiet):
     """Measure decode, embed and search speed on this machine."""
-    from .bench import estimate_seconds, measure
+    from oddling.embedding.throughput import estimate_seconds, measure
 
     log = (lambda msg: None) if quiet else (lambda msg: click.echo(msg, err=True))
     result = measure(backbone, runtime, n_images=n_images, batch_size=batch_size, workers=workers,
@@ -335,7 +336,7 @@ def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, 
     if history_bank is not None:
         entries = api.drift_history(history_bank)
         if plot_path is not None:
-            from .plots import plot_drift_history
+            from oddling.reporting.plots import plot_drift_history
 
             plot_drift_history(entries, entries[-1]["expected_share"], plot_path)
             click.echo(f"{len(entries)} checks drawn in {plot_path}", err=True)
@@ -471,9 +472,9 @@ def backbones_list(as_json):
 @user_errors
 def backbones_import(backbone_id, weights_file, cache_dir, force):
     """Copy WEIGHTS_FILE into the cache for BACKBONE_ID and verify (or pin) its SHA-256."""
-    from .backbones.manifest import get_spec
-    from .backbones.weights import import_weights
-    from .paths import cache_dir as resolve_cache
+    from oddling.backbones.manifest import get_spec
+    from oddling.backbones.weights import import_weights
+    from oddling.paths import cache_dir as resolve_cache
 
     target, sha = import_weights(get_spec(backbone_id), weights_file, resolve_cache(cache_dir), force=force)
     click.echo(f"Imported {weights_file} -> {target} (SHA-256 {sha})", err=True)

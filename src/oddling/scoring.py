@@ -7,9 +7,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .bank import Bank
-from .calibrate import conformal_p_values, cutoff_for_rate, flag
-from .knn import ExactCosineIndex, mean_knn_distance
+from oddling.bank.store import Bank
+from oddling.detectors.conformal import conformal_p_values, cutoff_for_rate, flag
+from oddling.index.exact import ExactCosineIndex, mean_knn_distance
 
 
 @dataclass
@@ -54,7 +54,7 @@ def score_vectors(bank: Bank, vectors: np.ndarray, target_fpr: float | None = No
 def _score_patches(bank: Bank, features: np.ndarray, cutoff: float) -> VectorScores:
     """Local mode: score = largest nearest-patch distance; the one "neighbour" is the reference
     whose patch is nearest to the worst location."""
-    from .local import PatchIndex, score_patches
+    from oddling.detectors.patch import PatchIndex, score_patches
 
     ps = score_patches(PatchIndex(bank.embeddings), bank.patch_sources, features)
     return VectorScores(

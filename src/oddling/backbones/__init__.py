@@ -11,11 +11,13 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from ..errors import OddlingError
-from ..paths import cache_dir
-from . import efficientnet_lite, onnx_runtime, openclip
-from .manifest import BackboneSpec, get_spec, load_manifest
-from .weights import resolve_weights
+from oddling.errors import OddlingError
+from oddling.paths import cache_dir
+from oddling.backbones import efficientnet_lite
+from oddling.backbones import onnx_runtime
+from oddling.backbones import openclip
+from oddling.backbones.manifest import BackboneSpec, get_spec, load_manifest
+from oddling.backbones.weights import resolve_weights
 
 FAMILIES = {
     "efficientnet_lite": efficientnet_lite.build,

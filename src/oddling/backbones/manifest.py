@@ -8,8 +8,8 @@ from pathlib import Path
 
 import yaml
 
-from ..errors import OddlingError
-from ..preprocess import Preprocessing
+from oddling.errors import OddlingError
+from oddling.data.preprocess import Preprocessing
 
 MANIFEST_NAME = "models_manifest.yaml"
 

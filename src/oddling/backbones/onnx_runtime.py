@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
-from ..errors import OddlingError
+from oddling.errors import OddlingError
 
 OPSET = 17
 EXPORT_VERSION = 1        # bump when export settings change: old exports are then ignored

@@ -7,7 +7,7 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from ..errors import OddlingError
+from oddling.errors import OddlingError
 
 
 class ImageTower(nn.Module):

@@ -15,9 +15,9 @@ import sys
 import tempfile
 from pathlib import Path
 
-from ..errors import OddlingError
-from ..intake import sha256_file
-from .manifest import BackboneSpec
+from oddling.errors import OddlingError
+from oddling.data.intake import sha256_file
+from oddling.backbones.manifest import BackboneSpec
 
 PINS_FILE = "pins.json"
 

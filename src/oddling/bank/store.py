@@ -14,7 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import OddlingError
+from oddling.errors import OddlingError
 
 FORMAT_NAME = "oddling-bank"
 FORMAT_VERSION = 1

@@ -7,7 +7,7 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .embed import OK
+from oddling.embedding.runner import OK
 
 SCORE_COLUMNS = ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "health", "status"]
 
@@ -67,7 +67,7 @@ def write_text(path: Path, text: str, force: bool = False) -> Path:
     """Write a result file, refusing to replace an existing one unless asked."""
     path = Path(path)
     if path.exists() and not force:
-        from .errors import OddlingError
+        from oddling.errors import OddlingError
 
         raise OddlingError(f"{path} already exists; pass --force to overwrite it")
     path.parent.mkdir(parents=True, exist_ok=True)

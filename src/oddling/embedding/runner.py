@@ -15,11 +15,11 @@ from pathlib import Path
 import numpy as np
 from tqdm import tqdm
 
-from .backbones import Backbone
-from .embed_cache import EmbeddingCache
-from .health import STATS, image_stats
-from .intake import ORIGINAL_SIZE, IntakeError, load_rgb, sha256_file
-from .preprocess import Preprocessing
+from oddling.backbones import Backbone
+from oddling.embedding.cache import EmbeddingCache
+from oddling.data.health import STATS, image_stats
+from oddling.data.intake import ORIGINAL_SIZE, IntakeError, load_rgb, sha256_file
+from oddling.data.preprocess import Preprocessing
 
 OK = "ok"
 _CACHED = "cached"   # internal: the vector is in the cache, nothing to decode

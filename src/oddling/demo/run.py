@@ -4,10 +4,10 @@ from __future__ import annotations
 import shutil
 from pathlib import Path
 
-from . import api
-from .demo_scene import SceneCounts, generate_scene
-from .errors import OddlingError
-from .report import write_report
+from oddling import api
+from oddling.demo.scene import SceneCounts, generate_scene
+from oddling.errors import OddlingError
+from oddling.reporting.page import write_report
 
 MARKER = ".oddling-demo"   # says a folder was made by the demo, so --force may clear it
 

@@ -54,7 +54,7 @@ def image_stats(image: Image.Image, width: int, height: int) -> dict[str, float]
     are the original file's pixel size, passed in because the decoded image may be reduced.
     """
     if image.mode != "RGB":
-        raise ValueError(f"image must be RGB (see oddling.intake.to_rgb), got mode: {image.mode!r}")
+        raise ValueError(f"image must be RGB (see oddling.data.intake.to_rgb), got mode: {image.mode!r}")
     if width < 1 or height < 1:
         raise ValueError(f"width and height must be >= 1, got: {width} x {height}")
     small = _downscaled(image)

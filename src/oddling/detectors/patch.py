@@ -16,7 +16,7 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 
-from .preprocess import Preprocessing
+from oddling.data.preprocess import Preprocessing
 
 MODE = "local"
 # Ends of the 24-channel (stride 4, block index 2) and 40-channel (stride 8, block 4) stages of

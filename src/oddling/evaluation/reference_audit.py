@@ -17,9 +17,9 @@ from dataclasses import asdict, dataclass
 
 import numpy as np
 
-from .bank import Bank
-from .health import K_FAR_OUT, STATS, health_findings, tukey_fences
-from .knn import ExactCosineIndex
+from oddling.bank.store import Bank
+from oddling.data.health import K_FAR_OUT, STATS, health_findings, tukey_fences
+from oddling.index.exact import ExactCosineIndex
 
 NEAR_DUPLICATE_COSINE = 0.99
 NEIGHBOURS_CHECKED = 5   # near-duplicate candidates looked at per reference

@@ -20,11 +20,11 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from . import __version__
-from .bank import Bank
-from .errors import OddlingError
-from .intake import IntakeError, load_rgb
-from .results import ScoreRow, sort_rows, write_text
+from oddling import __version__
+from oddling.bank.store import Bank
+from oddling.errors import OddlingError
+from oddling.data.intake import IntakeError, load_rgb
+from oddling.reporting.results import ScoreRow, sort_rows, write_text
 
 HISTOGRAM_FILE = "scores_histogram.png"
 ROC_FILE = "roc.png"
@@ -127,7 +127,7 @@ def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float
                          path: Path) -> Path:
     """Calibration scores of the bank against the scored batch (split by true label when known),
     as densities on shared bins, with the flag cutoff drawn."""
-    from .plots import plt  # importing oddling.plots selects the Agg backend
+    from oddling.reporting.plots import plt  # importing oddling.reporting.plots selects the Agg backend
 
     cal = np.asarray(calibration_scores, dtype=np.float64)
     groups = [(f"scored batch (n={len(rows)})", np.array([r.score for r in rows]), _BATCH_COLOUR)]
@@ -165,8 +165,8 @@ def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float
 
 
 def _evaluation_plots(result, metrics: dict, folder: Path) -> dict[str, Path]:
-    from . import metrics as m
-    from .plots import plot_pr, plot_roc
+    from oddling.evaluation import metrics as m
+    from oddling.reporting.plots import plot_pr, plot_roc
 
     labels, scores = np.asarray(result.labels), np.asarray(result.scores)
     fpr, tpr, _ = m.roc_curve(labels, scores)
@@ -195,7 +195,7 @@ def thumbnail_uri(path: Path, px: int) -> str | None:
 
 def heatmap_uri(path: Path, row: ScoreRow, crop: int, px: int, vmax: float) -> str | None:
     """Local mode: a JPEG data URI of the image with its anomaly map over it, like the thumbnail."""
-    from .local import overlay, upsample_map
+    from oddling.detectors.patch import overlay, upsample_map
 
     try:
         image = load_rgb(path, min_side=px)

@@ -10,9 +10,9 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from .backbones import load_backbone
-from .embed import _prepare, default_workers, embed_files
-from .knn import ExactCosineIndex
+from oddling.backbones import load_backbone
+from oddling.embedding.runner import _prepare, default_workers, embed_files
+from oddling.index.exact import ExactCosineIndex
 
 
 def make_test_jpegs(folder: Path, n: int, seed: int = 0, size: tuple[int, int] = (1152, 864)) -> list[Path]:

@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.stats import norm, rankdata
 
-from .results import json_number
+from oddling.reporting.results import json_number
 
 CI_METHOD = "DeLong (1988), normal approximation"
 _TPR_AT_FPR_RATES = (0.01, 0.05)

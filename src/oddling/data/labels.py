@@ -4,7 +4,7 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
-from .errors import OddlingError
+from oddling.errors import OddlingError
 
 NORMAL_WORDS = {"normal", "0", "ok", "good"}
 ANOMALY_WORDS = {"anomaly", "anomalous", "1", "defect", "bad"}
