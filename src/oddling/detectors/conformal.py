@@ -63,3 +63,35 @@ def flag(scores: np.ndarray, cutoff: float) -> np.ndarray:
     s = np.asarray(scores, dtype=np.float64)
     with np.errstate(invalid="ignore"):
         return np.where(np.isnan(s), False, s > cutoff)
+
+
+class ConformalThreshold:
+    """Calibration scores of known-normal images -> p-values, a cutoff and flags, for every detector.
+
+    One object so that the rule ("flagged iff p-value <= target_fpr iff score > cutoff") lives in
+    one place. `cutoff` is inf when the calibration set is too small for anything to be flagged.
+    """
+
+    def __init__(self, calibration_scores: np.ndarray, target_fpr: float):
+        self.calibration_scores = np.asarray(calibration_scores, dtype=np.float64)
+        self.target_fpr = _check_rate(target_fpr)
+        self.cutoff = cutoff_for_rate(self.calibration_scores, self.target_fpr)
+
+    @property
+    def n(self) -> int:
+        return len(self.calibration_scores)
+
+    @property
+    def can_flag(self) -> bool:
+        return math.isfinite(self.cutoff)
+
+    def p_values(self, scores: np.ndarray) -> np.ndarray:
+        return conformal_p_values(self.calibration_scores, scores)
+
+    def flag(self, scores: np.ndarray) -> np.ndarray:
+        return flag(scores, self.cutoff)
+
+
+def smallest_supported_rate(n: int) -> float:
+    """The lowest target rate at which n calibration scores can flag anything: a*(n+1) >= 1."""
+    return 1.0 / (n + 1)

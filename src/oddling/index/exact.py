@@ -52,28 +52,3 @@ def knn_numpy(vectors: np.ndarray, queries: np.ndarray, k: int) -> tuple[np.ndar
     dist = 1.0 - queries @ vectors.T
     order = np.argsort(dist, axis=1, kind="stable")[:, :k]
     return np.clip(np.take_along_axis(dist, order, axis=1), 0.0, 2.0), order
-
-
-def mean_knn_distance(distances: np.ndarray) -> np.ndarray:
-    """The anomaly score: mean distance to the k nearest bank vectors (higher = more anomalous)."""
-    return distances.mean(axis=1, dtype=np.float64)
-
-
-def leave_one_out_scores(vectors: np.ndarray, groups: np.ndarray, k: int) -> np.ndarray:
-    """Score each bank vector against the others, ignoring every vector of its own group.
-
-    `groups` gives one id per vector (the file's content hash): an exact duplicate would sit at
-    distance 0 and make its copy look more normal than any new image can.
-    """
-    n = len(vectors)
-    _, counts = np.unique(groups, return_counts=True)
-    largest_group = int(counts.max())
-    if n - largest_group < k:
-        raise ValueError(f"leave-one-out needs at least k={k} other distinct images, got {n - largest_group}")
-    search_k = min(n, k + largest_group)
-    distances, indices = ExactCosineIndex(vectors).search(vectors, search_k)
-    scores = np.empty(n, dtype=np.float64)
-    for i in range(n):
-        keep = groups[indices[i]] != groups[i]
-        scores[i] = distances[i][keep][:k].mean(dtype=np.float64)
-    return scores

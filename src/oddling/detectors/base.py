@@ -1,0 +1,177 @@
+"""What every detector offers, and the calibration schemes they share.
+
+A detector follows scikit-learn's estimator habits: the constructor only stores parameters;
+`fit(features, groups)` learns state (trailing underscores), including `calibration_scores_`
+(scores of known-normal references obtained so that they are exchangeable with a new normal
+image's score) and `calibration_method_` (how). `anomaly_score(features)` returns `Scores`,
+higher = more anomalous. State is saved as JSON-able parameters and state plus NumPy arrays,
+never pickled. Nothing outside `oddling.detectors` branches on which detector it is: the text
+the CLI, the README and the review page show comes from the detector itself.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+
+from oddling.errors import OddlingError
+
+N_FOLDS = 5
+SEED = 0
+
+
+@dataclass
+class Scores:
+    """What `anomaly_score` returns for n images.
+
+    neighbour_rows / neighbour_distances: (n, m) reference rows and distances nearest first,
+    where the method has nearest references as evidence (else None). maps: (n, G, G) per-location
+    scores where the method scores locations (else None).
+    """
+
+    scores: np.ndarray
+    neighbour_rows: np.ndarray | None = None
+    neighbour_distances: np.ndarray | None = None
+    maps: np.ndarray | None = None
+
+
+class Detector:
+    """Base class. Subclasses set the class attributes and implement the four methods below."""
+
+    name: ClassVar[str]                 # id used in banks, the CLI and tune's leaderboard
+    title: ClassVar[str]                # a few words for people, e.g. "k nearest neighbours"
+    citation: ClassVar[str]
+    feature_kind: ClassVar[str] = "vector"   # "vector": (n, d); "patches": (n, locations, c)
+
+    # --- to implement -------------------------------------------------------------------------
+    def get_params(self) -> dict:
+        """Constructor parameters, JSON-able: `type(self)(**get_params())` is an unfitted copy."""
+        raise NotImplementedError
+
+    def fit(self, features: np.ndarray, groups: np.ndarray) -> "Detector":
+        raise NotImplementedError
+
+    def anomaly_score(self, features: np.ndarray) -> Scores:
+        raise NotImplementedError
+
+    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        """Fitted state as (JSON-able dict, arrays). Calibration scores are saved by the bank."""
+        raise NotImplementedError
+
+    def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "Detector":
+        """Restore fitted state saved by `state()` (validated: a bad value raises OddlingError)."""
+        raise NotImplementedError
+
+    def describe_score(self) -> str:
+        """One sentence for people: what the score measures."""
+        raise NotImplementedError
+
+    # --- shared ------------------------------------------------------------------------------
+    # Whether the detector's fitted state is exactly its training features (kNN): the bank then
+    # keeps those once, as the reference features, and hands them back on load.
+    keeps_training_features: ClassVar[bool] = False
+    # Whether `anomaly_score` can give nearest references as evidence.
+    has_neighbours: ClassVar[bool] = False
+
+    def clone(self) -> "Detector":
+        return type(self)(**self.get_params())
+
+    def describe_calibration(self) -> str:
+        return getattr(self, "calibration_method_", "not fitted")
+
+    def summary(self) -> dict:
+        return {"name": self.name, "title": self.title, "params": self.get_params(),
+                "score": self.describe_score(), "calibration": self.describe_calibration()}
+
+    def __repr__(self) -> str:
+        params = ", ".join(f"{k}={v!r}" for k, v in self.get_params().items())
+        return f"{type(self).__name__}({params})"
+
+
+def check_features(features: np.ndarray, kind: str = "vector", name: str = "features") -> np.ndarray:
+    """Validate once at the boundary: finite float array of the right rank."""
+    array = np.asarray(features)
+    rank = 2 if kind == "vector" else 3
+    if array.ndim != rank:
+        raise OddlingError(f"{name} must be a {rank}-D array, got shape {array.shape}")
+    if not np.issubdtype(array.dtype, np.floating):
+        raise OddlingError(f"{name} must hold floats, got dtype {array.dtype}")
+    if not np.isfinite(array).all():
+        raise OddlingError(f"{name} hold NaN or infinite values")
+    return array
+
+
+def distinct_groups(groups: np.ndarray | None, n: int) -> np.ndarray:
+    """One id per row: the file content hash, so copies of one file stay together."""
+    if groups is None:
+        return np.arange(n).astype(str)
+    groups = np.asarray(groups)
+    if len(groups) != n:
+        raise OddlingError(f"groups has {len(groups)} entries for {n} feature rows")
+    return groups
+
+
+def group_folds(groups: np.ndarray, n_folds: int = N_FOLDS, seed: int = SEED) -> np.ndarray:
+    """Fold number per row; all rows of a group in the same fold, groups dealt out at random (seeded)."""
+    distinct = np.array(sorted(set(groups.tolist())))
+    if len(distinct) < n_folds:
+        raise OddlingError(f"cross-conformal calibration needs at least {n_folds} distinct references, "
+                           f"got {len(distinct)}")
+    order = np.random.default_rng(seed).permutation(len(distinct))
+    fold_of_group = dict(zip(distinct[order].tolist(), (np.arange(len(distinct)) % n_folds).tolist()))
+    return np.array([fold_of_group[g] for g in groups.tolist()], dtype=np.int64)
+
+
+def cross_conformal_scores(detector: Detector, features: np.ndarray, groups: np.ndarray,
+                           n_folds: int = N_FOLDS, seed: int = SEED) -> np.ndarray:
+    """K-fold cross-conformal calibration scores (Vovk, "Cross-conformal predictors", Annals of
+    Mathematics and Artificial Intelligence 2015): each reference is scored by a copy of the
+    detector fitted without its fold, as a new image is scored by a detector that never saw it.
+
+    The final detector is fitted on all references, so new normal images meet a model trained on
+    slightly more data than the fold models: their scores are, if anything, a little lower, and
+    the p-values err on the conservative side.
+    """
+    folds = group_folds(groups, n_folds, seed)
+    scores = np.empty(len(features), dtype=np.float64)
+    for fold in range(n_folds):
+        held = folds == fold
+        model = detector.clone()._fit_model(features[~held])
+        scores[held] = model._score_model(features[held])
+    return scores
+
+
+CROSS_CONFORMAL = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
+                   "fold (copies of a file kept in one fold)")
+
+
+class CrossConformalDetector(Detector):
+    """A detector whose model has no exact, cheap leave-one-out (Gaussian, PCA, isolation forest):
+    fitted on all references, calibrated K-fold cross-conformally.
+
+    Subclasses implement `_fit_model(features) -> self` (sets the model's fitted attributes) and
+    `_score_model(features) -> (n,) float64`, both on validated (n, d) arrays.
+    """
+
+    def fit(self, features: np.ndarray, groups: np.ndarray | None = None) -> "CrossConformalDetector":
+        features = check_features(features)
+        groups = distinct_groups(groups, len(features))
+        self.calibration_scores_ = cross_conformal_scores(self, features, groups)
+        self.calibration_method_ = CROSS_CONFORMAL
+        self._fit_model(features)
+        self.n_features_in_ = int(features.shape[1])
+        return self
+
+    def anomaly_score(self, features: np.ndarray) -> Scores:
+        features = check_features(features)
+        if features.shape[1] != self.n_features_in_:
+            raise OddlingError(f"features have {features.shape[1]} dimensions; the detector was fitted on "
+                               f"{self.n_features_in_}")
+        return Scores(np.asarray(self._score_model(features), dtype=np.float64))
+
+    def _fit_model(self, features: np.ndarray) -> "CrossConformalDetector":
+        raise NotImplementedError
+
+    def _score_model(self, features: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
