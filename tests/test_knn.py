@@ -3,7 +3,8 @@ import numpy as np
 import pytest
 from scipy.spatial.distance import cdist
 
-from oddling.index.exact import ExactCosineIndex, knn_numpy, leave_one_out_scores, mean_knn_distance
+from oddling.detectors.knn import leave_one_out_scores, mean_knn_distance
+from oddling.index.exact import ExactCosineIndex, knn_numpy
 
 
 def unit(rng, n, d):

@@ -20,6 +20,7 @@ from PIL import Image
 
 from oddling.api import EvaluationResult, ScoreResult
 from oddling.bank.store import Bank
+from oddling.detectors.knn import KNNDetector
 from oddling.errors import OddlingError
 from oddling.evaluation.metrics import evaluation_summary
 from oddling.reporting.page import CAUTION, plots_folder, write_report
@@ -37,12 +38,15 @@ def _png(path, colour, size=(48, 32)):
 def _bank(ref_root) -> Bank:
     for i in range(N_REFS):
         _png(ref_root / f"r{i}.png", (40 * i, 120, 200 - 30 * i))
+    features = np.eye(N_REFS, 4, dtype=np.float32)
     return Bank(
-        backbone={"id": "efficientnet-lite0", "weights_sha256": "ab" * 32, "preprocessing": {"crop": 224},
-                  "embedding_dim": 4},
-        mode="global", k=2,
+        representation={"kind": "embedding", "id": "efficientnet-lite0", "backbone": "efficientnet-lite0",
+                        "preprocessing": {"crop": 224}, "dim": 4,
+                        "backbone_fingerprint": {"id": "efficientnet-lite0", "weights_sha256": "ab" * 32,
+                                                 "preprocessing": {"crop": 224}, "embedding_dim": 4}},
+        detector=KNNDetector(k=2).load_state({}, {"references": features}),
         references=[{"path": f"r{i}.png", "sha256": f"{i:064d}"} for i in range(N_REFS)],
-        embeddings=np.eye(N_REFS, 4, dtype=np.float32),
+        features=features,
         calibration_scores=np.linspace(0.1, 0.4, 60),
         calibration={"method": "leave-one-out", "n": 60, "target_fpr": 0.05, "cutoff": 0.37},
         reference_root=str(ref_root), tool_version="0.1.0", created="2026-01-01T00:00:00+00:00",

@@ -1,11 +1,14 @@
 """The reference bank on disk: a folder with bank.json (human-readable metadata) and .npy arrays.
 
-Saved into a temporary sibling folder and renamed into place, so a crash never leaves a
-half-written bank that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
+Format version 2 records the representation and the detector (name, parameters, fitted state);
+version-1 banks (one kNN or patch mode, from earlier releases) still load. Saved into a
+temporary sibling folder and renamed into place, so a crash never leaves a half-written bank
+that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
 """
 from __future__ import annotations
 
 import json
+import math
 import os
 import shutil
 import tempfile
@@ -14,51 +17,51 @@ from pathlib import Path
 
 import numpy as np
 
+from oddling.detectors import make_detector
+from oddling.detectors.base import Detector
+from oddling.detectors.conformal import ConformalThreshold
 from oddling.errors import OddlingError
 
 FORMAT_NAME = "oddling-bank"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+READABLE_VERSIONS = (1, 2)
 METADATA_FILE = "bank.json"
-EMBEDDINGS_FILE = "embeddings.npy"
+FEATURES_FILE = "features.npy"              # reference features (vector representations)
 CALIBRATION_FILE = "calibration_scores.npy"
 HEALTH_FILE = "health_stats.npy"
-SOURCES_FILE = "patch_sources.npy"   # local mode: reference row each bank patch came from
-HISTORY_FILE = "drift_history.jsonl"   # appended by `oddling drift`; carried over when a bank is replaced
+DETECTOR_PREFIX = "detector."               # detector arrays: detector.<name>.npy
+HISTORY_FILE = "drift_history.jsonl"        # appended by `oddling drift`; carried over when a bank is replaced
+V1_EMBEDDINGS_FILE = "embeddings.npy"
+V1_SOURCES_FILE = "patch_sources.npy"
 
 
 @dataclass
 class Bank:
-    """Reference embeddings and everything needed to trust them later.
+    """A fitted detector over one representation of the references, and everything needed to trust it later.
 
     Attributes
     ----------
-    backbone : dict
-        Fingerprint of the network: id, weights_sha256, preprocessing, embedding_dim.
+    representation : dict
+        The representation's fingerprint: kind, id, preprocessing, dim, and the backbone's
+        fingerprint (id, weights_sha256, preprocessing, embedding_dim) where a network is used.
+    detector : Detector, fitted.
     references : list of dict
-        One entry per embedded reference image, in embedding-row order: path (relative to
+        One entry per usable reference image, in feature-row order: path (relative to
         `reference_root`, POSIX), sha256.
-    mode : str
-        "global" (one L2-normalised embedding per reference) or "local" (patch features).
-    embeddings : ndarray (n, d) float32, L2-normalised; in local mode (m, c) coreset patches.
+    features : ndarray (n, d) float32 or None
+        The references' features for vector representations (what drift, audit and bank
+        add/remove need); None for patch grids, which are not kept.
     calibration_scores : ndarray (n_cal,) float64, scores of known-normal images.
     calibration : dict
-        method, target_fpr, cutoff (flag when score > cutoff), n.
-    health_stats : ndarray (n, len(health.STATS)) float64, per-reference image statistics.
-    health_fences : dict
-        Tukey fences per statistic, fitted on the references (health.fit_fences).
-    skipped : list of dict
-        Reference files that could not be used: path, status.
-    local : dict
-        Local mode only: layers, grid, coreset fraction, patches before and after the coreset,
-        patch dimension, how calibration was done.
-    patch_sources : ndarray (m,) int64, local mode: the reference row of each bank patch.
+        method, n, target_fpr, cutoff (flag when score > cutoff), rule.
+    health_stats : ndarray (n, len(health.STATS)) float64; health_fences : dict (Tukey fences).
+    skipped : list of dict, reference files that could not be used: path, status.
     """
 
-    backbone: dict
-    mode: str
-    k: int
+    representation: dict
+    detector: Detector
     references: list[dict]
-    embeddings: np.ndarray
+    features: np.ndarray | None
     calibration_scores: np.ndarray
     calibration: dict
     reference_root: str
@@ -67,30 +70,42 @@ class Bank:
     health_stats: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
     health_fences: dict = field(default_factory=dict)
     skipped: list[dict] = field(default_factory=list)
-    local: dict = field(default_factory=dict)
-    patch_sources: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
     path: Path | None = None
+    format_version: int = FORMAT_VERSION
 
     @property
     def size(self) -> int:
         return len(self.references)
 
+    @property
+    def backbone(self) -> dict:
+        """The backbone fingerprint, or for a representation without a network its own id."""
+        return self.representation.get("backbone_fingerprint") or {"id": self.representation["id"]}
+
+    @property
+    def target_fpr(self) -> float:
+        return float(self.calibration["target_fpr"])
+
+    def threshold(self, target_fpr: float | None = None) -> ConformalThreshold:
+        return ConformalThreshold(self.calibration_scores, self.target_fpr if target_fpr is None else target_fpr)
+
     def metadata(self) -> dict:
+        state, _ = self.detector.state()
         return {
             "format": FORMAT_NAME,
             "format_version": FORMAT_VERSION,
             "tool_version": self.tool_version,
             "created": self.created,
-            "backbone": self.backbone,
-            "mode": self.mode,
-            "k": self.k,
+            "representation": self.representation,
+            "detector": {"name": self.detector.name, "params": self.detector.get_params(), "state": state,
+                         "score": self.detector.describe_score()},
             "calibration": self.calibration,
             "health_fences": self.health_fences,
             "reference_root": self.reference_root,
             "n_references": self.size,
             "references": self.references,
             "skipped": self.skipped,
-        } | ({"local": self.local} if self.mode == "local" else {})
+        }
 
 
 def is_bank(path: Path) -> bool:
@@ -102,17 +117,18 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
     target = Path(path)
     if target.exists():
         if not force:
-            raise OddlingError(f"{target} already exists; pass --force (force=True) to replace it")
+            raise OddlingError(f"{target} already exists; pass --force to replace it")
         if not target.is_dir() or not (is_bank(target) or not any(target.iterdir())):
             raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-"))
     try:
-        np.save(tmp / EMBEDDINGS_FILE, np.ascontiguousarray(bank.embeddings, dtype=np.float32))
+        if bank.features is not None:
+            np.save(tmp / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=np.float32))
         np.save(tmp / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
         np.save(tmp / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
-        if bank.mode == "local":
-            np.save(tmp / SOURCES_FILE, np.asarray(bank.patch_sources, dtype=np.int64))
+        for key, array in bank.detector.state()[1].items():
+            np.save(tmp / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
         # Metadata last: a folder without bank.json is never taken for a bank.
         with open(tmp / METADATA_FILE, "w", encoding="utf-8") as f:
             json.dump(bank.metadata(), f, indent=2)
@@ -135,6 +151,62 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
     return target
 
 
+class _Fields:
+    """Reads bank.json with one clear message naming the field that is missing or wrong."""
+
+    def __init__(self, folder: Path, meta):
+        if not isinstance(meta, dict):
+            raise OddlingError(f"bank {folder} is damaged: {METADATA_FILE} must hold a JSON object, "
+                               f"got {type(meta).__name__}")
+        self.folder, self.meta = folder, meta
+
+    def fail(self, name: str, why: str):
+        raise OddlingError(f"bank {self.folder} is damaged: field {name!r} {why}")
+
+    def get(self, name: str, types, default=None, required: bool = True, source: dict | None = None):
+        source = self.meta if source is None else source
+        if name not in source:
+            if required:
+                self.fail(name, "is missing")
+            return default
+        value = source[name]
+        if isinstance(value, bool) and bool not in (types if isinstance(types, tuple) else (types,)):
+            self.fail(name, f"must be {_type_names(types)}, got {value!r}")
+        if not isinstance(value, types):
+            self.fail(name, f"must be {_type_names(types)}, got {type(value).__name__}")
+        return value
+
+
+def _type_names(types) -> str:
+    types = types if isinstance(types, tuple) else (types,)
+    return " or ".join({"dict": "an object", "list": "a list", "str": "a string", "int": "an integer",
+                        "float": "a number", "NoneType": "null", "bool": "true/false"}.get(t.__name__, t.__name__)
+                       for t in types)
+
+
+def _load_array(folder: Path, name: str) -> np.ndarray:
+    try:
+        array = np.load(folder / name, allow_pickle=False)
+    except (OSError, ValueError, EOFError) as exc:
+        raise OddlingError(f"bank {folder} is damaged: {name} cannot be read ({exc})") from exc
+    if not np.issubdtype(array.dtype, np.number):
+        raise OddlingError(f"bank {folder} is damaged: {name} holds {array.dtype}, not numbers")
+    return array
+
+
+def _check_calibration(f: _Fields, calibration: dict, scores: np.ndarray) -> None:
+    rate = f.get("target_fpr", (int, float), source=calibration)
+    if not 0.0 < rate < 1.0:
+        f.fail("calibration.target_fpr", f"must be in (0, 1), got {rate}")
+    cutoff = f.get("cutoff", (int, float, type(None)), source=calibration)
+    if scores.ndim != 1 or not np.isfinite(scores).all():
+        f.fail("calibration scores", "must be a 1-D array of finite numbers")
+    expected = ConformalThreshold(scores, rate).cutoff
+    recorded = math.inf if cutoff is None else float(cutoff)
+    if not (recorded == expected or abs(recorded - expected) <= 1e-9 * max(1.0, abs(expected))):
+        f.fail("calibration.cutoff", f"is {cutoff}, but the calibration scores give {expected}")
+
+
 def load_bank(path: str | os.PathLike) -> Bank:
     folder = Path(path)
     meta_path = folder / METADATA_FILE
@@ -142,60 +214,140 @@ def load_bank(path: str | os.PathLike) -> Bank:
         raise OddlingError(f"{folder} is not an oddling bank (no {METADATA_FILE}); create one with `oddling fit`")
     try:
         meta = json.loads(meta_path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as exc:
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise OddlingError(f"{meta_path} is unreadable: {exc}") from exc
+    f = _Fields(folder, meta)
     if meta.get("format") != FORMAT_NAME:
         raise OddlingError(f"{folder} is not an oddling bank (format {meta.get('format')!r})")
-    if meta.get("format_version") != FORMAT_VERSION:
-        raise OddlingError(
-            f"bank {folder} has format version {meta.get('format_version')}, this oddling reads version "
-            f"{FORMAT_VERSION}; rebuild it with `oddling fit`"
-        )
-    try:
-        embeddings = np.load(folder / EMBEDDINGS_FILE, allow_pickle=False)
-        calibration_scores = np.load(folder / CALIBRATION_FILE, allow_pickle=False)
-        health_stats = np.load(folder / HEALTH_FILE, allow_pickle=False)
-        local = meta.get("local", {}) if meta.get("mode") == "local" else {}
-        sources = np.load(folder / SOURCES_FILE, allow_pickle=False) if local else np.zeros(0, np.int64)
-    except (OSError, ValueError) as exc:
-        raise OddlingError(f"bank {folder} is damaged: {exc}") from exc
-    expected = ((local["coreset_size"], local["patch_dim"]) if local
-                else (meta["n_references"], meta["backbone"]["embedding_dim"]))
-    if embeddings.shape != expected or (local and sources.shape != (expected[0],)):
-        raise OddlingError(
-            f"bank {folder} is damaged: embeddings have shape {embeddings.shape}, metadata says {expected}"
-        )
+    version = meta.get("format_version")
+    if version not in READABLE_VERSIONS:
+        raise OddlingError(f"bank {folder} has format version {version!r}; this oddling reads versions "
+                           f"{', '.join(map(str, READABLE_VERSIONS))}; rebuild it with `oddling fit`")
+    references = f.get("references", list)
+    for i, ref in enumerate(references):
+        if not isinstance(ref, dict) or not isinstance(ref.get("path"), str) or not isinstance(ref.get("sha256"), str):
+            f.fail(f"references[{i}]", "must be an object with string path and sha256")
+    if f.get("n_references", int) != len(references):
+        f.fail("n_references", f"is {meta['n_references']}, but {len(references)} references are listed")
+    calibration = f.get("calibration", dict)
+    calibration_scores = _load_array(folder, CALIBRATION_FILE).astype(np.float64)
+    _check_calibration(f, calibration, calibration_scores)
+    health_stats = _load_array(folder, HEALTH_FILE).astype(np.float64)
+    if health_stats.ndim != 2 or len(health_stats) != len(references):
+        f.fail("health_stats.npy", f"must have one row per reference ({len(references)}), got shape {health_stats.shape}")
+    health_fences = f.get("health_fences", dict, {}, required=False)
+    _check_fences(f, health_fences)
+    if version == 1:
+        representation, detector, features = _read_v1(f, len(references))
+    else:
+        representation, detector, features = _read_v2(f, len(references))
     return Bank(
-        backbone=meta["backbone"],
-        mode=meta["mode"],
-        k=int(meta["k"]),
-        references=meta["references"],
-        embeddings=embeddings,
-        calibration_scores=calibration_scores,
-        calibration=meta["calibration"],
-        reference_root=meta["reference_root"],
-        tool_version=meta["tool_version"],
-        created=meta["created"],
-        health_stats=health_stats,
-        health_fences=meta.get("health_fences", {}),
-        skipped=meta.get("skipped", []),
-        local=local,
-        patch_sources=sources,
-        path=folder,
+        representation=representation, detector=detector, references=references, features=features,
+        calibration_scores=calibration_scores, calibration=calibration,
+        reference_root=f.get("reference_root", str), tool_version=f.get("tool_version", str),
+        created=f.get("created", str), health_stats=health_stats, health_fences=health_fences,
+        skipped=f.get("skipped", list, [], required=False), path=folder, format_version=version,
     )
 
 
+def _check_fences(f: _Fields, fences: dict) -> None:
+    """Each statistic: q1, q3 numbers; unusual, far_out [low, high] pairs of numbers."""
+    def number(value) -> bool:
+        return not isinstance(value, bool) and isinstance(value, (int, float)) and math.isfinite(value)
+
+    for name, fence in fences.items():
+        if not isinstance(fence, dict):
+            f.fail(f"health_fences.{name}", "must be an object")
+        for key, value in fence.items():
+            ok = (number(value) if key in ("q1", "q3")
+                  else isinstance(value, list) and len(value) == 2 and all(number(v) for v in value))
+            if not ok:
+                f.fail(f"health_fences.{name}.{key}", f"must be {'a number' if key in ('q1', 'q3') else '[low, high]'}, "
+                       f"got {value!r}")
+
+
+def _check_features(f: _Fields, features: np.ndarray, n: int, dim: int, name: str) -> np.ndarray:
+    if features.shape != (n, dim):
+        f.fail(name, f"must have shape ({n}, {dim}), got {features.shape}")
+    if not np.isfinite(features).all():
+        f.fail(name, "holds NaN or infinite values")
+    norms = np.linalg.norm(features.astype(np.float64), axis=1)
+    if n and not np.all((np.abs(norms - 1.0) < 1e-3) | (norms < 1e-6)):
+        f.fail(name, "must hold unit-length vectors (found lengths from "
+                     f"{norms.min():.4g} to {norms.max():.4g})")
+    return np.ascontiguousarray(features, dtype=np.float32)
+
+
+def _detector(f: _Fields, name: str, params: dict, state: dict, arrays: dict) -> Detector:
+    detector = make_detector(name, params)
+    return detector.load_state(state, arrays)
+
+
+def _read_v2(f: _Fields, n: int):
+    representation = f.get("representation", dict)
+    for key, types in (("kind", str), ("id", str), ("dim", int), ("preprocessing", dict)):
+        f.get(key, types, source=representation)
+    info = f.get("detector", dict)
+    name = f.get("name", str, source=info)
+    params = f.get("params", dict, source=info)
+    state = f.get("state", dict, source=info)
+    arrays = {p.name[len(DETECTOR_PREFIX):-4]: _load_array(f.folder, p.name)
+              for p in sorted(f.folder.glob(f"{DETECTOR_PREFIX}*.npy"))}
+    features = None
+    if representation["kind"] != "patches":
+        features = _check_features(f, _load_array(f.folder, FEATURES_FILE), n, representation["dim"], FEATURES_FILE)
+        arrays["references"] = features
+    return representation, _detector(f, name, params, state, arrays), features
+
+
+def _read_v1(f: _Fields, n: int):
+    """Banks from before detectors were objects: mode global (kNN) or local (patch kNN)."""
+    from oddling.backbones.representation import DEFAULT_PATCH_STAGES
+
+    backbone = f.get("backbone", dict)
+    for key, types in (("id", str), ("embedding_dim", int), ("preprocessing", dict)):
+        f.get(key, types, source=backbone)
+    mode = f.get("mode", str)
+    k = f.get("k", int)
+    embeddings = _load_array(f.folder, V1_EMBEDDINGS_FILE)
+    if mode == "global":
+        features = _check_features(f, embeddings, n, backbone["embedding_dim"], V1_EMBEDDINGS_FILE)
+        representation = {"kind": "embedding", "id": backbone["id"], "backbone": backbone["id"],
+                          "preprocessing": backbone["preprocessing"], "dim": backbone["embedding_dim"],
+                          "backbone_fingerprint": backbone}
+        return representation, _detector(f, "knn", {"k": k}, {}, {"references": features}), features
+    if mode != "local":
+        f.fail("mode", f"must be global or local, got {mode!r}")
+    local = f.get("local", dict)
+    from oddling.detectors.patch import local_preprocessing
+    from oddling.data.preprocess import Preprocessing
+
+    prep = local_preprocessing(Preprocessing.from_dict(backbone["preprocessing"]))
+    representation = {"kind": "patches", "id": f"{backbone['id']}/patches:{'+'.join(DEFAULT_PATCH_STAGES)}",
+                      "backbone": backbone["id"], "stages": list(DEFAULT_PATCH_STAGES),
+                      "preprocessing": prep.to_dict(), "dim": f.get("patch_dim", int, source=local),
+                      "backbone_fingerprint": backbone}
+    params = {"coreset": f.get("coreset_fraction", (int, float), source=local), "seed": f.get("seed", int, 0, False, local)}
+    arrays = {"patches": embeddings, "sources": _load_array(f.folder, V1_SOURCES_FILE)}
+    return representation, _detector(f, "patch-knn", params, local, arrays), None
+
+
 def check_compatible(bank: Bank, fingerprint: dict) -> None:
-    """Refuse to compare embeddings made by different networks, weights or preprocessing."""
+    """Refuse to compare features made by different representations, networks, weights or preprocessing."""
     differences = []
+    mine, theirs = bank.representation, fingerprint
+    for key, label in (("id", "representation"), ("preprocessing", "preprocessing"), ("dim", "feature size")):
+        if mine.get(key) != theirs.get(key):
+            differences.append(f"{label}: bank has {mine.get(key)!r}, now {theirs.get(key)!r}")
+    a, b = mine.get("backbone_fingerprint") or {}, theirs.get("backbone_fingerprint") or {}
     for key, label in (("id", "backbone"), ("weights_sha256", "weights SHA-256"),
-                       ("preprocessing", "preprocessing"), ("embedding_dim", "embedding size")):
-        if bank.backbone.get(key) != fingerprint.get(key):
-            differences.append(f"{label}: bank has {bank.backbone.get(key)!r}, now {fingerprint.get(key)!r}")
+                       ("preprocessing", "backbone preprocessing"), ("embedding_dim", "embedding size")):
+        if a.get(key) != b.get(key):
+            differences.append(f"{label}: bank has {a.get(key)!r}, now {b.get(key)!r}")
     if differences:
         where = f" {bank.path}" if bank.path else ""
         raise OddlingError(
-            f"bank{where} was made with a different backbone setup; its embeddings cannot be compared:\n  "
+            f"bank{where} was made with a different representation; its features cannot be compared:\n  "
             + "\n  ".join(differences)
-            + "\nRebuild the bank with `oddling fit`, or score with the backbone it was made with."
+            + "\nRebuild the bank with `oddling fit`, or score with the representation it was made with."
         )

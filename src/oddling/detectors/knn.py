@@ -75,6 +75,7 @@ class KNNDetector(Detector):
     citation = "Bergman, Cohen & Hoshen 2020 (kNN on pretrained features); Angiulli & Pizzuti 2002"
     keeps_training_features = True
     has_neighbours = True
+    evidence_title = "Nearest normal references (cosine distance)"
 
     def __init__(self, k: int = 5):
         self.k = k

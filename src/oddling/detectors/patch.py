@@ -204,3 +204,111 @@ def fit_patch_bank(features: np.ndarray, hashes: list[str], fraction: float, see
     patches, sources = np.ascontiguousarray(patches[keep]), sources[keep]
     cal = score_patches(PatchIndex(patches), sources, features[cal_rows])
     return PatchBank(patches, sources.astype(np.int64), cal_rows, cal.scores, len(bank_rows) * features.shape[1])
+
+
+from oddling.detectors.base import Detector, Scores, check_features, distinct_groups  # noqa: E402
+from oddling.errors import OddlingError  # noqa: E402
+
+
+class PatchKNNDetector(Detector):
+    """Nearest-patch distance over a coreset memory bank; the image score is the worst location.
+
+    Parameters
+    ----------
+    coreset : float, default 0.1
+        Share of the reference patches kept (greedy k-center, Sener & Savarese 2018).
+    seed : int, default 0
+        Seeds the calibration split and the coreset's random projection.
+
+    Attributes
+    ----------
+    patches_ : ndarray (m, c) float32, the coreset of reference patches.
+    sources_ : ndarray (m,) int64, the reference row each kept patch came from.
+    calibration_scores_ : scores of the held-out references (split conformal).
+    calibration_rows_ : ndarray, reference rows held out to calibrate.
+    n_patches_ : int, patches before the coreset.
+
+    References
+    ----------
+    Cohen & Hoshen, "Sub-image anomaly detection with deep pyramid correspondences", 2020;
+    Roth et al., "Towards total recall in industrial anomaly detection", CVPR 2022.
+    """
+
+    name = "patch-knn"
+    title = "patch nearest neighbours with a coreset"
+    citation = "Cohen & Hoshen 2020 (SPADE); Roth et al. 2022 (PatchCore); Sener & Savarese 2018 (coreset)"
+    feature_kind = "patches"
+    keeps_training_features = False
+    has_neighbours = True
+    evidence_title = "Reference with the patch nearest to the worst spot (nearest-patch distance)"
+
+    def __init__(self, coreset: float = 0.1, seed: int = SEED):
+        self.coreset = coreset
+        self.seed = seed
+
+    def get_params(self) -> dict:
+        return {"coreset": self.coreset, "seed": self.seed}
+
+    def _check_params(self) -> None:
+        if isinstance(self.coreset, bool) or not isinstance(self.coreset, (int, float)) or not 0.0 < self.coreset <= 1.0:
+            raise OddlingError(f"coreset must be in (0, 1], got: {self.coreset!r}")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int):
+            raise OddlingError(f"seed must be an integer, got: {self.seed!r}")
+
+    def fit(self, features: np.ndarray, groups: np.ndarray | None = None) -> "PatchKNNDetector":
+        from oddling.detectors.base import check_features, distinct_groups
+        self._check_params()
+        features = check_features(features, "patches")
+        groups = distinct_groups(groups, len(features))
+        distinct = len(set(groups.tolist()))
+        if distinct < 2 * MIN_CALIBRATION:
+            raise OddlingError(f"the patch detector needs at least {2 * MIN_CALIBRATION} distinct references "
+                               f"(half of them at most are held out to calibrate), got {distinct}")
+        bank = fit_patch_bank(features, groups.tolist(), self.coreset, self.seed)
+        self.patches_, self.sources_ = bank.patches, bank.sources
+        self.calibration_scores_ = bank.calibration_scores
+        self.calibration_rows_ = np.asarray(bank.calibration_rows, dtype=np.int64)
+        self.n_patches_ = int(bank.n_patches)
+        self.grid_ = int(round(np.sqrt(features.shape[1])))
+        self.calibration_method_ = SPLIT_CALIBRATION
+        return self
+
+    def anomaly_score(self, features: np.ndarray):
+        features = check_features(features, "patches")
+        ps = score_patches(PatchIndex(self.patches_), self.sources_, features)
+        return Scores(ps.scores, ps.worst_source[:, None], ps.scores[:, None], ps.maps)
+
+    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        return ({"n_patches": self.n_patches_, "coreset_size": int(len(self.patches_)),
+                 "patch_dim": int(self.patches_.shape[1]), "grid": self.grid_,
+                 "size_mb": round(self.patches_.nbytes / 2**20, 3),
+                 "calibration_method": self.calibration_method_},
+                {"patches": self.patches_, "sources": self.sources_, "calibration_rows": self.calibration_rows_})
+
+    def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "PatchKNNDetector":
+        self._check_params()
+        patches, sources = arrays.get("patches"), arrays.get("sources")
+        if patches is None or sources is None or patches.ndim != 2 or len(patches) == 0:
+            raise OddlingError("patch detector state needs a non-empty 2-D `patches` array and `sources`")
+        if sources.shape != (len(patches),) or not np.issubdtype(sources.dtype, np.integer):
+            raise OddlingError(f"patch detector `sources` must be {len(patches)} integers, got {sources.shape} {sources.dtype}")
+        if not np.isfinite(patches).all():
+            raise OddlingError("patch detector `patches` hold NaN or infinite values")
+        self.patches_ = np.ascontiguousarray(patches, dtype=np.float32)
+        self.sources_ = sources.astype(np.int64)
+        self.calibration_rows_ = np.asarray(arrays.get("calibration_rows", np.zeros(0, np.int64)), dtype=np.int64)
+        try:
+            self.n_patches_ = int(state["n_patches"])
+            self.grid_ = int(state["grid"])
+        except (KeyError, TypeError, ValueError) as exc:
+            raise OddlingError(f"patch detector state lacks a valid {exc}") from exc
+        self.calibration_method_ = str(state.get("calibration_method", SPLIT_CALIBRATION))
+        return self
+
+    def describe_score(self) -> str:
+        return ("largest distance (Euclidean, in feature units) from any location of the image to its nearest "
+                "reference patch; the map shows it per location")
+
+
+SPLIT_CALIBRATION = ("split conformal: a seeded share of the references held out and scored against the coreset "
+                     "of the others (leave-one-out would need one coreset per reference)")

@@ -64,7 +64,7 @@ def duplicate_findings(bank: Bank) -> list[Finding]:
 
 def near_duplicate_findings(bank: Bank, threshold: float = NEAR_DUPLICATE_COSINE) -> list[Finding]:
     k = min(bank.size, NEIGHBOURS_CHECKED + 1)
-    distances, rows = ExactCosineIndex(bank.embeddings).search(bank.embeddings, k)
+    distances, rows = ExactCosineIndex(bank.features).search(bank.features, k)
     seen = set()
     findings = []
     for i in range(bank.size):

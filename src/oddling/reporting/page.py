@@ -14,6 +14,7 @@ import io
 import json
 import math
 import os
+import textwrap
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -102,7 +103,7 @@ def write_report(
     shown = scored[:top_n]
     plots.mkdir(parents=True, exist_ok=True)
     figures = {"histogram": plot_score_histogram(bank.calibration_scores, scored, cutoff, target_fpr,
-                                                 plots / HISTOGRAM_FILE)}
+                                                 plots / HISTOGRAM_FILE, bank.detector.describe_score())}
     if metrics is not None:
         figures.update(_evaluation_plots(result, metrics, plots))
     thumbs = _thumbnails(shown, scored_root, Path(bank.reference_root), thumb_px)
@@ -121,10 +122,14 @@ def run_id(bank: Bank, scored_root: Path, rows: list[ScoreRow]) -> str:
     return hashlib.sha256(key.encode("utf-8")).hexdigest()[:16]
 
 
+def _params_text(params: dict) -> str:
+    return "(" + ", ".join(f"{k}={v}" for k, v in params.items()) + ")" if params else ""
+
+
 # ---- plots ------------------------------------------------------------------------------------
 
 def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float, target_fpr: float,
-                         path: Path) -> Path:
+                         path: Path, score_text: str = "detector score") -> Path:
     """Calibration scores of the bank against the scored batch (split by true label when known),
     as densities on shared bins, with the flag cutoff drawn."""
     from oddling.reporting.plots import plt  # importing oddling.reporting.plots selects the Agg backend
@@ -142,7 +147,7 @@ def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float
     fig, ax = plt.subplots(figsize=(7.5, 4.4))
     try:
         ax.hist(cal, bins=bins, density=True, histtype="stepfilled", color=_CAL_COLOUR, alpha=0.35,
-                label=f"bank calibration, leave-one-out (n={len(cal)})")
+                label=f"bank calibration (n={len(cal)})")
         for label, values, colour in groups:
             if len(values):
                 ax.hist(values, bins=bins, density=True, histtype="step", lw=2, color=colour, label=label)
@@ -152,8 +157,7 @@ def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float
             ax.set_title("Scores: flagged when score > cutoff")
         else:
             ax.set_title("Scores (no usable cutoff: the bank is too small for this false-alarm rate)")
-        ax.set_xlabel("score: mean cosine distance to the k nearest references (higher = more anomalous)",
-                      fontsize=9)
+        ax.set_xlabel(textwrap.fill(f"score: {score_text} (higher = more anomalous)", 100), fontsize=8)
         ax.set_ylabel("density")
         ax.grid(True, alpha=0.3)
         ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=2, fontsize=8, frameon=False)
@@ -213,7 +217,7 @@ def _heatmaps(shown: list[ScoreRow], scored: list[ScoreRow], scored_root: Path, 
     if not with_maps:
         return {}
     vmax = max(r.score for r in scored)
-    crop = bank.backbone["preprocessing"]["crop"]
+    crop = bank.representation["preprocessing"]["crop"]
     with ThreadPoolExecutor(max_workers=min(8, os.cpu_count() or 1)) as pool:
         uris = pool.map(lambda r: heatmap_uri(scored_root / r.path, r, crop, px, vmax), with_maps)
         return dict(zip([r.path for r in with_maps], uris))
@@ -321,9 +325,11 @@ class _Page:
                        f"{len(self.unreadable)} not scored")),
             ("Flag rule", cutoff),
             ("Bank", f"<code>{_e(b.path) if b.path else '(not saved)'}</code>"),
-            ("Backbone", f"<code>{_e(b.backbone.get('id', '?'))}</code>"),
-            ("References", (f"{b.size} images, k = {b.k} nearest; calibration "
-                            f"{_e(b.calibration.get('method', '?'))} over {len(b.calibration_scores)}")),
+            ("Representation", f"<code>{_e(b.representation.get('id', '?'))}</code>"),
+            ("Detector", (f"<code>{_e(b.detector.name)}</code> {_e(_params_text(b.detector.get_params()))}: "
+                          f"{_e(b.detector.describe_score())}")),
+            ("References", (f"{b.size} images; calibration {_e(b.calibration.get('method', '?'))}, "
+                            f"{len(b.calibration_scores)} scores")),
             ("Reference folder", f"<code>{_e(b.reference_root)}</code>"),
             ("Report made", _e(_dt.datetime.now().astimezone().replace(microsecond=0).isoformat())),
             ("oddling", f"{_e(__version__)} (bank made with {_e(b.tool_version)} on {_e(b.created)})"),
@@ -338,8 +344,10 @@ class _Page:
                 f"<figcaption>{caption} PNG copy: <code>{_e(self.plots_dir)}/{_e(filename)}</code></figcaption></figure>")
 
     def _distribution(self) -> str:
-        caption = ("Shaded: scores of the bank's own images, each scored against the others (what normal looks "
-                   "like). Lines: this batch. Images right of the dashed cutoff are flagged.")
+        caption = ("Shaded: calibration scores of the bank's own images, each scored by a detector that had not "
+                   "seen it (what normal looks like). Lines: this batch."
+                   + (" Images right of the dashed cutoff are flagged." if math.isfinite(self.cutoff)
+                      else " There is no cutoff: the bank has too few calibration scores for this rate."))
         return ('<section id="distribution"><h2>Score distribution</h2>'
                 + self._figure("histogram", "Histogram of calibration scores and scored batch with the cutoff",
                                caption, HISTOGRAM_FILE) + "</section>")
@@ -426,9 +434,7 @@ class _Page:
 
     @property
     def _refs_title(self) -> str:
-        if self.bank.mode == "local":
-            return "Reference with the patch nearest to the worst spot (nearest-patch distance)"
-        return "Nearest normal references (cosine distance)"
+        return self.bank.detector.evidence_title
 
     def _card(self, rank: int, row: ScoreRow) -> str:
         thumb = self.thumbs.get(self.scored_root / row.path)
@@ -465,8 +471,7 @@ class _Page:
             f'{folder}{flag}'
             f'<dl class="numbers"><div><dt>Score</dt><dd>{_num(row.score)}</dd></div>'
             f"<div><dt>p-value</dt><dd>{_p(row.p_value)}</dd></div>{truth}</dl></div></div>{heatmap}"
-            f'<p class="refs-title">{self._refs_title}</p>'
-            f'<ol class="refs">{"".join(refs)}</ol>'
+            + (f'<p class="refs-title">{self._refs_title}</p><ol class="refs">{"".join(refs)}</ol>' if refs else "") +
             f'<div class="decide" role="group" aria-label="Decision for {_e(name)}">{buttons}</div>'
             f'<p class="decision-state">No decision yet</p></li>'
         )

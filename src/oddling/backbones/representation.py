@@ -1,0 +1,195 @@
+"""Representations: how images become features for a detector.
+
+- `embedding` of a backbone: its pooled penultimate features, L2-normalised (the default).
+- `stages` of a backbone: the global average of chosen intermediate stages, each L2-normalised,
+  concatenated and normalised again, so every stage weighs the same.
+- `patches` of a backbone: the chosen stages as a grid of local features (for the patch detector).
+- `pixels`: a small thumbnail, grey or RGB, zero-mean and unit-norm per image: no network at all,
+  which suits small, aligned images (a digit, a part always photographed the same way).
+
+Written as text for the CLI and leaderboards: `efficientnet-lite0`, `efficientnet-lite0/stages:stage4+stage6`,
+`efficientnet-lite0/patches:stage2+stage3`, `pixels:32`, `pixels:32:rgb`.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from oddling.data.preprocess import Preprocessing
+from oddling.errors import OddlingError
+
+KINDS = ("embedding", "stages", "patches", "pixels")
+DEFAULT_PATCH_STAGES = ("stage2", "stage3")
+PIXEL_SIZES = range(8, 129)
+# ITU-R BT.601 luma weights, the usual RGB -> grey conversion (Pillow's "L" mode uses them too).
+LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
+
+
+@dataclass(frozen=True)
+class RepresentationSpec:
+    kind: str
+    backbone: str | None = None
+    stages: tuple[str, ...] = ()
+    size: int = 32
+    colour: str = "grey"
+
+    def __post_init__(self):
+        if self.kind not in KINDS:
+            raise OddlingError(f"representation kind must be one of {', '.join(KINDS)}, got: {self.kind!r}")
+        if self.kind == "pixels":
+            if self.size not in PIXEL_SIZES:
+                raise OddlingError(f"pixel size must be in [8, 128], got: {self.size}")
+            if self.colour not in ("grey", "rgb"):
+                raise OddlingError(f"pixel colour must be grey or rgb, got: {self.colour!r}")
+        elif not self.backbone:
+            raise OddlingError(f"a {self.kind} representation needs a backbone")
+        if self.kind in ("stages", "patches") and not self.stages:
+            raise OddlingError(f"a {self.kind} representation needs at least one stage")
+
+    @property
+    def feature_kind(self) -> str:
+        return "patches" if self.kind == "patches" else "vector"
+
+    @property
+    def id(self) -> str:
+        if self.kind == "pixels":
+            return f"pixels:{self.size}" + (":rgb" if self.colour == "rgb" else "")
+        if self.kind == "embedding":
+            return str(self.backbone)
+        return f"{self.backbone}/{self.kind}:{'+'.join(self.stages)}"
+
+    def to_dict(self) -> dict:
+        out = {"kind": self.kind, "id": self.id}
+        if self.kind == "pixels":
+            return out | {"size": self.size, "colour": self.colour}
+        return out | {"backbone": self.backbone} | ({"stages": list(self.stages)} if self.stages else {})
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "RepresentationSpec":
+        if not isinstance(data, dict) or "kind" not in data:
+            raise OddlingError(f"representation must be a mapping with a kind, got: {data!r}")
+        try:
+            return cls(kind=data["kind"], backbone=data.get("backbone"), stages=tuple(data.get("stages") or ()),
+                       size=int(data.get("size", 32)), colour=data.get("colour", "grey"))
+        except (TypeError, ValueError) as exc:
+            raise OddlingError(f"representation {data!r} is not valid: {exc}") from exc
+
+    @classmethod
+    def parse(cls, text: str) -> "RepresentationSpec":
+        text = text.strip()
+        if text.startswith("pixels"):
+            parts = text.split(":")
+            try:
+                size = int(parts[1]) if len(parts) > 1 else 32
+            except ValueError:
+                raise OddlingError(f"pixel representation must look like pixels:32 or pixels:32:rgb, got: {text!r}") from None
+            return cls("pixels", size=size, colour=parts[2] if len(parts) > 2 else "grey")
+        if "/" not in text:
+            return cls("embedding", backbone=text)
+        backbone, rest = text.split("/", 1)
+        kind, _, stages = rest.partition(":")
+        if kind not in ("stages", "patches"):
+            raise OddlingError(f"representation {text!r}: after the backbone write /stages:S1+S2 or /patches:S1+S2")
+        return cls(kind, backbone=backbone, stages=tuple(s for s in stages.split("+") if s)
+                   or (DEFAULT_PATCH_STAGES if kind == "patches" else ()))
+
+
+@dataclass
+class Representation:
+    """A loaded representation: what the embedding runner needs (`preprocessing`, `embed`,
+    `embedding_dim`) plus what a bank records to refuse mixing features (`fingerprint`)."""
+
+    spec: RepresentationSpec
+    preprocessing: Preprocessing
+    embedding_dim: int
+    backbone: object = None          # oddling.backbones.Backbone, or None for pixels
+    patch_shape: tuple[int, int] | None = None   # patches: (locations, channels)
+    _embed: object = field(default=None, repr=False)
+
+    @property
+    def id(self) -> str:
+        return self.spec.id
+
+    @property
+    def runtime(self) -> str:
+        return self.backbone.runtime if self.backbone is not None else "numpy"
+
+    @property
+    def cacheable(self) -> bool:
+        # Patch grids are ~100x larger than a vector: recomputed rather than cached.
+        return self.spec.kind != "patches"
+
+    def embed(self, batch: np.ndarray) -> np.ndarray:
+        return self._embed(batch)
+
+    def fingerprint(self) -> dict:
+        """What must match between a bank and a later run for their features to compare."""
+        out = self.spec.to_dict() | {"preprocessing": self.preprocessing.to_dict(), "dim": self.embedding_dim}
+        if self.backbone is not None:
+            out["backbone_fingerprint"] = self.backbone.fingerprint()
+        return out
+
+    def cache_fingerprint(self) -> dict:
+        # Embeddings keep the key they always had, so caches made before representations existed still serve.
+        if self.spec.kind == "embedding":
+            return self.backbone.fingerprint()
+        return self.fingerprint()
+
+
+def _unit_rows(x: np.ndarray) -> np.ndarray:
+    norms = np.linalg.norm(x, axis=1, keepdims=True)
+    return (x / np.maximum(norms, 1e-12)).astype(np.float32, copy=False)
+
+
+def pixel_features(batch: np.ndarray, colour: str = "grey") -> np.ndarray:
+    """(N, 3, s, s) RGB 0..255 -> (N, s*s) grey (or 3*s*s RGB), zero-mean and unit-norm per image,
+    so the cosine distance between two thumbnails is one minus their correlation."""
+    x = np.asarray(batch, dtype=np.float32)
+    if colour == "grey":
+        x = np.tensordot(LUMA, x, axes=([0], [1]))   # (N, s, s)
+    flat = x.reshape(len(x), -1)
+    return _unit_rows(flat - flat.mean(axis=1, keepdims=True))
+
+
+def pooled_stage_features(backbone, batch: np.ndarray, stages: tuple[str, ...]) -> np.ndarray:
+    maps = backbone.torch_intermediates(batch, stages)
+    return _unit_rows(np.concatenate([_unit_rows(m.mean(axis=(2, 3))) for m in maps], axis=1))
+
+
+def _stage_channels(backbone, stages: tuple[str, ...]) -> int:
+    known = backbone.stages
+    if not known:
+        raise OddlingError(f"backbone {backbone.id!r} exposes no intermediate stages; use its embedding "
+                           "or a backbone that lists stages (`oddling backbones list`)")
+    unknown = [s for s in stages if s not in known]
+    if unknown:
+        raise OddlingError(f"backbone {backbone.id!r} has no stage {unknown[0]!r}; its stages: {', '.join(known)}")
+    return sum(int(known[s]["channels"]) for s in stages)
+
+
+def load_representation(spec: RepresentationSpec | str, cache=None, runtime: str = "auto") -> Representation:
+    """Load what a representation needs (a verified backbone, unless it is `pixels`)."""
+    if isinstance(spec, str):
+        spec = RepresentationSpec.parse(spec)
+    if spec.kind == "pixels":
+        prep = Preprocessing(spec.size, spec.size, "bilinear", (0.0, 0.0, 0.0), (1.0, 1.0, 1.0))
+        dim = spec.size * spec.size * (3 if spec.colour == "rgb" else 1)
+        return Representation(spec, prep, dim, _embed=lambda batch: pixel_features(batch, spec.colour))
+    from oddling.backbones import load_backbone
+
+    if spec.kind == "embedding":
+        net = load_backbone(spec.backbone, cache, runtime)
+        return Representation(spec, net.preprocessing, net.embedding_dim, net, _embed=net.embed)
+    # Intermediate stages come from the PyTorch network: no export to make.
+    net = load_backbone(spec.backbone, cache, "torch")
+    channels = _stage_channels(net, spec.stages)
+    if spec.kind == "stages":
+        return Representation(spec, net.preprocessing, channels, net,
+                              _embed=lambda batch: pooled_stage_features(net, batch, spec.stages))
+    from oddling.detectors import patch
+
+    prep = patch.local_preprocessing(net.preprocessing)
+    grid = patch.grid_size(prep.crop)
+    return Representation(spec, prep, channels, net, patch_shape=(grid * grid, channels),
+                          _embed=lambda batch: patch.patch_features(net.network, batch, spec.stages))

@@ -1,0 +1,3 @@
+from oddling.cli import main
+
+main()

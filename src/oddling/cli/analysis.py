@@ -1,0 +1,219 @@
+"""Commands of the main job: fit a bank, score a folder, evaluate on labelled images, write the review page."""
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+import click
+
+from oddling import api
+from oddling.backbones import DEFAULT_BACKBONE
+from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
+from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
+                                target_fpr_override, user_errors)
+from oddling.errors import OddlingError
+from oddling.jobs.common import refuse_existing
+
+
+def parse_params(pairs: tuple[str, ...]) -> dict:
+    """KEY=VALUE detector parameters; values read as JSON where they parse (numbers, true, null), else text."""
+    params = {}
+    for pair in pairs:
+        key, sep, value = pair.partition("=")
+        if not sep or not key.strip():
+            raise OddlingError(f"--param takes KEY=VALUE, got: {pair!r}")
+        try:
+            params[key.strip()] = json.loads(value)
+        except ValueError:
+            params[key.strip()] = value
+    return params
+
+
+def detector_options(func):
+    """--representation / --detector and their parameters, shared by fit and tune's reproduction hint."""
+    options = [
+        click.option("--representation", default=None,
+                     help="Features to compare: BACKBONE (its embedding), BACKBONE/stages:S1+S2 (pooled stages), "
+                          "BACKBONE/patches:S1+S2 (patch grid), or pixels:SIZE[:rgb]  [default: the backbone's "
+                          "embedding; its patches for patch-knn]."),
+        click.option("--backbone", default=None,
+                     help=f"Backbone id from the manifest (see `oddling backbones list`) [default: {DEFAULT_BACKBONE}]."),
+        click.option("--detector", type=click.Choice(list(DETECTORS)), default=DEFAULT_DETECTOR, show_default=True,
+                     help="How a score is computed (see README, Detectors)."),
+        click.option("--k", type=click.IntRange(min=1), default=None,
+                     help="knn: neighbours averaged into each score [default: 5]."),
+        click.option("--coreset", type=click.FloatRange(0, 1, min_open=True), default=None,
+                     help="patch-knn: share of reference patches kept (greedy k-center) [default: 0.1]."),
+        click.option("--param", "param_pairs", multiple=True, metavar="KEY=VALUE",
+                     help="Any detector parameter, e.g. --param variance=0.99 for pca (repeatable)."),
+    ]
+    for option in reversed(options):
+        func = option(func)
+    return func
+
+
+def _detector_params(detector: str, k, coreset, param_pairs) -> dict:
+    params = parse_params(param_pairs)
+    for name, value, owner in (("k", k, "knn"), ("coreset", coreset, "patch-knn")):
+        if value is not None:
+            if detector != owner:
+                raise OddlingError(f"--{name} applies to the {owner} detector, not {detector}")
+            params[name] = value
+    return params
+
+
+@click.command()
+@click.argument("reference_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", required=True, type=click.Path(path_type=Path),
+              help="Folder to write the bank into.")
+@detector_options
+@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
+              show_default=True, help="False-alarm rate on normal images that sets the flag cutoff.")
+@click.option("--force", is_flag=True, help="Replace an existing bank.")
+@click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
+@run_options
+@user_errors
+def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, target_fpr, force,
+        as_json, **run):
+    """Build a reference bank from REFERENCE_DIR, a folder of known-normal images."""
+    refuse_existing(bank_path, force=force)
+    bank = api.fit(reference_dir, bank_path, representation=representation, backbone=backbone, detector=detector,
+                   params=_detector_params(detector, k, coreset, param_pairs), target_fpr=target_fpr, force=force,
+                   options=_options(**run))
+    info = api.bank_info(bank_path)
+    if as_json:
+        _print_json(info | {"n_skipped": len(bank.skipped), "skipped": bank.skipped[:100]})
+        return
+    cutoff = bank.calibration["cutoff"]
+    params = ", ".join(f"{key}={value}" for key, value in bank.detector.get_params().items())
+    click.echo(
+        f"Bank written to {bank_path}: {bank.size} references, representation {bank.representation['id']}, "
+        f"detector {bank.detector.name} ({params}); cutoff "
+        f"{'none (too few calibration scores)' if cutoff is None else _num(cutoff, 4)} at target false-alarm "
+        f"rate {target_fpr}.\n  score: {bank.detector.describe_score()}\n  calibration: {bank.calibration['method']}; "
+        f"{info['supported_rates']}.", err=True)
+    if bank.skipped:
+        click.echo(f"{len(bank.skipped)} files skipped (listed in {bank_path}/bank.json):", err=True)
+        for item in bank.skipped[:10]:
+            click.echo(f"  {item['path']}: {item['status']}", err=True)
+
+
+@click.command()
+@click.argument("incoming_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@bank_option
+@click.option("--out", "out_csv", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="CSV to write, one row per file, highest score first.")
+@target_fpr_override
+@click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
+@click.option("--fail-on-flagged", is_flag=True, help="Exit 1 when any image is flagged.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Also write the review page (self-contained HTML) here.")
+@click.option("--maps", "maps_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Local-mode banks: write a heatmap overlay PNG per image into this folder.")
+@click.option("--force", is_flag=True, help="Overwrite existing output files.")
+@run_options
+@user_errors
+def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, maps_dir, force,
+          **run):
+    """Score every image in INCOMING_DIR against a bank."""
+    refuse_existing(out_csv, report_path, force=force)
+    result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, options=_options(**run))
+    result.write_csv(out_csv, force=True)
+    summary = result.summary() | {"out": str(out_csv)}
+    if maps_dir is not None:
+        result.write_maps(maps_dir)
+        summary["maps"] = str(maps_dir)
+    if report_path is not None:
+        from oddling.reporting.page import write_report
+
+        summary["report"] = str(write_report(report_path, result, force=True))
+    if as_json:
+        _print_json(summary)
+    else:
+        click.echo(
+            f"Scored {summary['n_scored']} of {summary['n_files']} files "
+            f"({summary['n_skipped']} unreadable or skipped); {summary['n_flagged']} flagged at "
+            f"target false-alarm rate {summary['target_fpr']}. Results: {out_csv}", err=True)
+    if fail_on_flagged and summary["n_flagged"]:
+        sys.exit(EXIT_ATTENTION)
+
+
+@click.command()
+@click.argument("test_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@bank_option
+@click.option("--out-dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Folder for metrics.json, scores.csv, roc.png, pr.png.")
+@click.option("--labels", "labels_csv", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
+              help="CSV with path,label (normal/anomaly or 0/1) instead of class subfolders.")
+@click.option("--normal-label", "normal_labels", multiple=True, default=("normal",), show_default=True,
+              help="Subfolder name that holds normal images (repeatable); every other subfolder is an anomaly kind.")
+@click.option("--beta", type=click.FloatRange(min=0, min_open=True), default=1.0, show_default=True,
+              help="F-beta weight for the best-cutoff search; beta > 1 weighs recall more.")
+@target_fpr_override
+@click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
+@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+              help="Also write the review page (self-contained HTML) here.")
+@click.option("--force", is_flag=True, help="Overwrite earlier results in --out-dir.")
+@run_options
+@user_errors
+def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, report_path,
+             force, **run):
+    """Measure the detector on TEST_DIR, a folder of labelled images."""
+    refuse_existing(report_path, force=force)
+    result = api.evaluate(test_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
+                          beta=beta, target_fpr=target_fpr, options=_options(**run))
+    paths = result.write(out_dir, force=force)
+    if report_path is not None:
+        from oddling.reporting.page import write_report
+
+        write_report(report_path, result, bank=result.bank, scored_root=test_dir, force=True)
+        click.echo(f"Review page: {report_path}", err=True)
+    m = result.metrics
+    if as_json:
+        _print_json(m)
+    else:
+        c = m["at_cutoff"]
+        low, high = m["auroc_ci95"]
+        click.echo(
+            f"{m['n_normal']} normal, {m['n_anomalous']} anomalous images: AUROC {_num(m['auroc'])} "
+            f"(95% CI {_num(low)}-{_num(high)}), average precision {_num(m['average_precision'])}.\n"
+            f"At the bank's cutoff: precision {_num(c['precision'])}, recall {_num(c['recall'])}, "
+            f"false-alarm rate {_num(c['fpr'])}.\nResults in {paths['metrics'].parent}", err=True)
+        if m["unreadable"]:
+            click.echo(f"{len(m['unreadable'])} unreadable files listed in metrics.json (not counted).", err=True)
+
+
+@click.command()
+@click.argument("folder", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@bank_option
+@click.option("--out", "out_html", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="HTML file to write; plots go to a sibling folder <name>_plots/.")
+@click.option("--labelled", is_flag=True,
+              help="FOLDER is a labelled test folder (class subfolders, or --labels): show labels and metrics.")
+@click.option("--labels", "labels_csv", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
+              help="CSV with path,label for a labelled folder (implies --labelled).")
+@click.option("--normal-label", "normal_labels", multiple=True, default=("normal",), show_default=True,
+              help="Subfolder name that holds normal images (repeatable).")
+@click.option("--top", "top_n", type=click.IntRange(min=1), default=200, show_default=True,
+              help="Cards shown in the gallery, highest scores first.")
+@target_fpr_override
+@click.option("--force", is_flag=True, help="Overwrite an existing page.")
+@run_options
+@user_errors
+def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top_n, target_fpr, force, **run):
+    """Write the review page for FOLDER scored against a bank (cached embeddings make this quick)."""
+    from oddling.reporting.page import write_report
+
+    refuse_existing(out_html, force=force)
+    options = _options(**run)
+    if labelled or labels_csv:
+        result = api.evaluate(folder, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
+                              target_fpr=target_fpr, options=options)
+        path = write_report(out_html, result, bank=result.bank, scored_root=folder, top_n=top_n, force=True)
+    else:
+        result = api.score(folder, bank_path, target_fpr=target_fpr, options=options)
+        path = write_report(out_html, result, top_n=top_n, force=True)
+    click.echo(f"Review page: {path}", err=True)
+
+

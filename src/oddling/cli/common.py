@@ -1,0 +1,86 @@
+"""What every command shares: turning user mistakes into one line and exit 2, the run options,
+the options several commands declare, and printing helpers."""
+from __future__ import annotations
+
+import functools
+import json
+import sys
+import warnings
+from pathlib import Path
+
+import click
+
+from oddling.backbones import RUNTIMES
+from oddling.errors import OddlingError
+from oddling.jobs.common import RunOptions
+
+from oddling.errors import OddlingError
+
+EXIT_ATTENTION = 1   # the job ran, and something a flag asked about needs attention
+EXIT_BAD_INPUT = 2   # click's convention for usage errors; we use it for bad input too
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    click.echo(f"warning: {message}", err=True)
+
+
+def user_errors(func):
+    """Turn user mistakes into a one-line message and exit code 2 instead of a traceback."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        warnings.showwarning = _show_warning
+        try:
+            return func(*args, **kwargs)
+        except OddlingError as exc:
+            click.echo(f"Error: {exc}", err=True)
+            sys.exit(EXIT_BAD_INPUT)
+        except KeyboardInterrupt:
+            click.echo("Interrupted.", err=True)
+            sys.exit(130)
+
+    return wrapper
+
+
+def run_options(func):
+    """Options every embedding command shares."""
+    options = [
+        click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+                     help="Folder for weights and caches [default: $ODDLING_CACHE_DIR or the user cache folder]."),
+        click.option("--runtime", type=click.Choice(RUNTIMES), default="auto", show_default=True,
+                     help="Inference runtime; auto = ONNX Runtime when installed, else PyTorch."),
+        click.option("--batch-size", type=click.IntRange(min=1), default=32, show_default=True,
+                     help="Images per network call."),
+        click.option("--workers", type=click.IntRange(min=1), default=None,
+                     help="Decoding threads [default: number of cores, at most 4]."),
+        click.option("--no-cache", is_flag=True, help="Neither reuse nor save embeddings in the cache folder."),
+        click.option("--quiet", "-q", is_flag=True, help="No progress bar."),
+    ]
+    for option in reversed(options):
+        func = option(func)
+    return func
+
+
+# Options several commands share, declared once.
+bank_option = click.option(
+    "--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+    help="Bank folder made by `oddling fit`.")
+target_fpr_override = click.option(
+    "--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
+    help="Override the bank's false-alarm rate for this run.")
+
+
+def _options(cache_dir, runtime, batch_size, workers, no_cache, quiet) -> RunOptions:
+    return RunOptions(cache_dir=cache_dir, runtime=runtime, batch_size=batch_size, workers=workers,
+                          progress=not quiet, use_cache=not no_cache)
+
+
+def _num(value, digits: int = 3) -> str:
+    """A metric for people: fixed decimals, or n/a where it is undefined (e.g. a CI from 1 sample)."""
+    return "n/a" if value is None else f"{value:.{digits}f}"
+
+
+def _print_json(data: dict) -> None:
+    click.echo(json.dumps(data, indent=2, sort_keys=True))
+
+

@@ -1,0 +1,145 @@
+"""Keeping a bank healthy: shift checks, the reference audit, and changing a bank's references."""
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import click
+
+from oddling import api
+from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
+                                target_fpr_override, user_errors)
+from oddling.errors import OddlingError
+from oddling.jobs.common import refuse_existing
+
+@click.command()
+@click.argument("incoming_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Bank to compare the batch with.")
+@click.option("--history", "history_bank", type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Instead of testing a batch: read this bank's history of checks (with --plot).")
+@click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="With --history: draw flagged share and MMD over time into this PNG.")
+@click.option("--permutations", type=click.IntRange(min=19), default=500, show_default=True,
+              help="Permutations for the MMD p-value.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed for subsampling and permutations.")
+@click.option("--json", "as_json", is_flag=True, help="Print the statistics as JSON.")
+@click.option("--fail-on-shift", is_flag=True, help="Exit 1 when the batch has shifted.")
+@run_options
+@user_errors
+def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, as_json, fail_on_shift, **run):
+    """Test whether the batch INCOMING_DIR as a whole has shifted away from the bank."""
+    if history_bank is not None:
+        entries = api.drift_history(history_bank)
+        if plot_path is not None:
+            from oddling.reporting.plots import plot_drift_history
+
+            plot_drift_history(entries, entries[-1]["expected_share"], plot_path)
+            click.echo(f"{len(entries)} checks drawn in {plot_path}", err=True)
+        if as_json:
+            _print_json({"history": entries})
+        elif plot_path is None:
+            for e in entries:
+                click.echo(f"{e['time']}  {'SHIFT   ' if e['shift'] else 'no shift'}  flagged {e['flagged_share']:.3f} "
+                           f"(expected {e['expected_share']:g})  MMD {e['mmd']:.4f} p {e['mmd_p_value']:.4f}  {e['batch']}")
+        return
+    if incoming_dir is None or bank_path is None:
+        raise click.UsageError("give INCOMING_DIR and --bank, or --history BANK")
+    result = api.drift(incoming_dir, bank_path, n_permutations=permutations, seed=seed, options=_options(**run))
+    if as_json:
+        _print_json(result)
+    else:
+        verdict = "SHIFT: this batch differs from the references" if result["shift"] else "no shift detected"
+        click.echo(
+            f"{verdict}\n"
+            f"  embedding distribution: MMD {result['mmd']:.4f}, permutation p-value {result['mmd_p_value']:.4f}\n"
+            f"  flagged share: {result['flagged_share']:.3f} of {result['n_batch']} (expected {result['expected_share']:g}),"
+            f" binomial p-value {result['binomial_p_value']:.4g}")
+    if fail_on_shift and result["shift"]:
+        sys.exit(EXIT_ATTENTION)
+
+
+@click.command()
+@bank_option
+@click.option("--json", "as_json", is_flag=True, help="Print the findings as JSON (input for `bank remove`).")
+@user_errors
+def audit(bank_path, as_json):
+    """Check the reference set itself: outliers, duplicates, near duplicates, unhealthy frames."""
+    result = api.audit(bank_path)
+    if as_json:
+        _print_json(result)
+        return
+    findings = result["findings"]
+    if not findings:
+        click.echo(f"No findings among {result['n_references']} references.")
+    for f in findings:
+        click.echo(f"{f['kind']:15s} {f['path']}: {f['detail']}")
+
+
+@click.group("bank")
+def bank_group():
+    """Inspect a bank and change its references without rebuilding it."""
+
+
+@bank_group.command("info")
+@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print as JSON.")
+@user_errors
+def bank_info(bank_path, as_json):
+    """What BANK holds and how it was made."""
+    info = api.bank_info(bank_path)
+    if as_json:
+        _print_json(info)
+        return
+    cal = info["calibration"]
+    det = info["detector"]
+    weights = info["backbone"].get("weights_sha256")
+    click.echo(
+        f"bank {info['path']} (format {info['format_version']}, made {info['created']} by oddling {info['tool_version']})\n"
+        f"  representation {info['representation']['id']}"
+        + (f" (weights SHA-256 {weights[:16]}...)" if weights else "") + "\n"
+        f"  references {info['n_references']} from {info['reference_root']} ({info['n_skipped']} files skipped)\n"
+        f"  detector   {det['name']} {det['params']}: {det['score']}\n"
+        f"  calibration {cal['method']}; {cal['n']} scores; cutoff {_num(cal['cutoff'], 4)} at target false-alarm "
+        f"rate {cal['target_fpr']}\n  {info['supported_rates']}")
+
+
+@bank_group.command("add")
+@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("source", type=click.Path(exists=True, path_type=Path))
+@click.option("--root", type=click.Path(exists=True, file_okay=False, path_type=Path), default=None,
+              help="Folder the decisions CSV's relative paths start from [default: the CSV's folder].")
+@run_options
+@user_errors
+def bank_add(bank_path, source, root, **run):
+    """Add SOURCE to BANK: a folder of normal images, or a report's decisions CSV (rows marked normal)."""
+    result = api.bank_add(bank_path, source, root=root, options=_options(**run))
+    click.echo(f"Added {result['added']} references ({result['already_in_bank']} already in the bank, "
+               f"{len(result['skipped'])} unreadable); the bank now holds {result['n_references']}.", err=True)
+
+
+@bank_group.command("remove")
+@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("items", nargs=-1, required=True)
+@click.option("--kind", "kinds", multiple=True,
+              type=click.Choice(["outlier", "duplicate", "near_duplicate", "health"]),
+              help="With an audit JSON: remove only findings of this kind (repeatable) [default: all].")
+@user_errors
+def bank_remove(bank_path, items, kinds):
+    """Remove references from BANK: their paths as `bank info`/`audit` show them, or an audit JSON file."""
+    paths = []
+    for item in items:
+        if item.endswith(".json") and Path(item).is_file():
+            try:
+                findings = json.loads(Path(item).read_text(encoding="utf-8"))["findings"]
+            except (ValueError, KeyError) as exc:
+                raise OddlingError(f"{item} is not an audit JSON (from `oddling audit --json`)") from exc
+            paths += [f["path"] for f in findings if not kinds or f["kind"] in kinds]
+        else:
+            paths.append(item)
+    result = api.bank_remove(bank_path, paths)
+    click.echo(f"Removed {result['removed']} references; the bank now holds {result['n_references']}.", err=True)
+    for missing in result["not_found"][:10]:
+        click.echo(f"  not in the bank: {missing}", err=True)
+
+

@@ -1,0 +1,113 @@
+"""evaluate: score a labelled folder and measure how well the scores separate normal from anomalous."""
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from oddling.bank.store import Bank
+from oddling.errors import OddlingError
+from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, load_bank_representation
+from oddling.jobs.scoring import as_bank, rows_from_embedded
+from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows, write_text
+
+
+@dataclass
+class EvaluationResult:
+    """Scores with their true labels, the metrics, and what could not be used."""
+
+    rows: list[ScoreRow]
+    metrics: dict
+    labels: np.ndarray     # of the labelled, scored rows, in `scored_labelled` order
+    scores: np.ndarray
+    bank: Bank | None = None
+    root: Path | None = None    # the test folder
+
+    @property
+    def scored_labelled(self) -> list[ScoreRow]:
+        return [r for r in self.rows if r.score is not None and r.label is not None]
+
+    def write(self, out_dir: str | os.PathLike, force: bool = False) -> dict[str, Path]:
+        """metrics.json, scores.csv, roc.png, pr.png in `out_dir`; existing files need force=True."""
+        from oddling.evaluation import metrics as m
+        from oddling.reporting.plots import plot_pr, plot_roc
+
+        out = Path(out_dir)
+        names = {"metrics": "metrics.json", "scores": "scores.csv", "roc": "roc.png", "pr": "pr.png"}
+        clash = [n for n in names.values() if (out / n).exists()]
+        if clash and not force:
+            raise OddlingError(f"{out} already holds {', '.join(clash)}; pass --force to replace them")
+        out.mkdir(parents=True, exist_ok=True)
+        paths = {key: out / name for key, name in names.items()}
+        write_text(paths["metrics"], json.dumps(self.metrics, indent=2, sort_keys=True) + "\n", force=True)
+        write_text(paths["scores"], rows_to_csv(self.rows, with_labels=True), force=True)
+        fpr, tpr, _ = m.roc_curve(self.labels, self.scores)
+        plot_roc(fpr, tpr, self.metrics["auroc"], paths["roc"])
+        precision, recall, _ = m.precision_recall_curve(self.labels, self.scores)
+        plot_pr(precision, recall, self.metrics["average_precision"], float(self.labels.mean()), paths["pr"])
+        return paths
+
+
+def attach_labels(rows: list[ScoreRow], labels_csv: str | os.PathLike | None, normal_labels: tuple[str, ...]) -> None:
+    from oddling.data.labels import label_from_folder, read_labels_csv
+
+    table = read_labels_csv(Path(labels_csv)) if labels_csv else None
+    for row in rows:
+        found = table.get(row.path) if table is not None else label_from_folder(row.path, normal_labels)
+        if found is not None:
+            row.label, row.kind = found
+
+
+def labelled_arrays(rows: list[ScoreRow], where: Path, normal_labels: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
+    used = [r for r in rows if r.score is not None and r.label is not None]
+    labels = np.array([r.label for r in used], dtype=np.int64)
+    scores = np.array([r.score for r in used], dtype=np.float64)
+    if not (labels == 0).any() or not (labels == 1).any():
+        raise OddlingError(
+            f"{where} needs readable images of both classes; found {int((labels == 0).sum())} normal and "
+            f"{int((labels == 1).sum())} anomalous (normal folders: {', '.join(normal_labels)})")
+    return labels, scores
+
+
+def evaluate(
+    test_dir: str | os.PathLike,
+    bank: Bank | str | os.PathLike,
+    *,
+    labels_csv: str | os.PathLike | None = None,
+    normal_labels: tuple[str, ...] = ("normal",),
+    beta: float = 1.0,
+    target_fpr: float | None = None,
+    options: RunOptions | None = None,
+) -> EvaluationResult:
+    """Score a labelled test folder and measure how well scores separate normal from anomalous.
+
+    Labels come from subfolders (a folder named in `normal_labels` is normal, any other is an
+    anomaly kind) or from `labels_csv`. Unreadable and unlabelled files are listed, never counted.
+    """
+    from oddling.evaluation.metrics import evaluation_summary
+
+    options = options or RunOptions()
+    test_dir = folder(test_dir, "test folder")
+    if beta <= 0:
+        raise OddlingError(f"beta must be > 0, got: {beta}")
+    bank = as_bank(bank)
+    if target_fpr is not None:
+        target_fpr = check_rate(target_fpr)
+    rep = load_bank_representation(bank, options)
+    embedded = embed_folder(test_dir, rep, options, "evaluating", (bank.path,) if bank.path else ())
+    rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
+    attach_labels(rows, labels_csv, normal_labels)
+    rows = sort_rows(rows)
+    labels, scores = labelled_arrays(rows, test_dir, normal_labels)
+    used = [r for r in rows if r.score is not None and r.label is not None]
+    summary = evaluation_summary(labels, scores, cutoff, kinds=[r.kind for r in used], beta=beta)
+    summary["bank"] = {"path": str(bank.path) if bank.path else None, "backbone": bank.backbone["id"],
+                       "representation": bank.representation["id"], "detector": bank.detector.name,
+                       "params": bank.detector.get_params(), "n_references": bank.size,
+                       "target_fpr": target_fpr or bank.target_fpr}
+    summary["unreadable"] = [{"path": r.path, "status": r.status} for r in rows if r.score is None]
+    summary["unlabelled"] = [r.path for r in rows if r.score is not None and r.label is None]
+    return EvaluationResult(rows, summary, labels, scores, bank, test_dir)

@@ -1,0 +1,85 @@
+"""Has the incoming stream moved away from the references? Batch shift tests and their history."""
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+
+from oddling.bank.store import HISTORY_FILE, Bank, load_bank
+from oddling.errors import OddlingError
+from oddling.jobs.common import RunOptions, embed_folder, folder, load_bank_representation
+from oddling.jobs.maintenance import require_features
+from oddling.jobs.scoring import as_bank, score_features
+from oddling.reporting.results import json_number
+
+
+def drift(
+    incoming_dir: str | os.PathLike,
+    bank: Bank | str | os.PathLike,
+    *,
+    n_permutations: int = 500,
+    seed: int = 0,
+    record: bool = True,
+    options: RunOptions | None = None,
+) -> dict:
+    """Has this whole batch moved away from the references?
+
+    Two tests: MMD between the batch's and the bank's features with a permutation p-value
+    (Gretton et al. 2012), and the share flagged at the bank's cutoff against its target rate
+    (exact binomial test). With `record`, one line per run is appended to the bank's history.
+    """
+    from oddling.evaluation.shift import flagged_share_test, mmd_permutation_test, shift_verdict
+
+    options = options or RunOptions()
+    incoming_dir = folder(incoming_dir, "incoming folder")
+    bank = as_bank(bank)
+    require_features(bank, "drift")
+    rep = load_bank_representation(bank, options)
+    embedded = embed_folder(incoming_dir, rep, options, "embedding batch", (bank.path,) if bank.path else ())
+    n = len(embedded.embeddings)
+    if n < 2:
+        raise OddlingError(f"{incoming_dir} has {n} readable images; a shift test needs at least 2")
+    mmd = mmd_permutation_test(embedded.embeddings, bank.features, n_permutations=n_permutations, seed=seed)
+    _, _, flagged, _ = score_features(bank, embedded.embeddings)
+    share = flagged_share_test(int(flagged.sum()), n, bank.target_fpr)
+    shift = shift_verdict(mmd["p_value"], share["binomial_p_value"])
+    result = {
+        "batch": str(incoming_dir),
+        "n_batch": n,
+        "n_bank": bank.size,
+        "mmd": json_number(float(np.sqrt(max(mmd["mmd2"], 0.0)))),
+        "mmd2": json_number(mmd["mmd2"]),
+        "mmd_p_value": json_number(mmd["p_value"]),
+        "mmd_bandwidth": json_number(mmd["bandwidth"]),
+        "n_permutations": n_permutations,
+        "n_flagged": int(flagged.sum()),
+        "flagged_share": json_number(share["flagged_share"]),
+        "expected_share": share["expected_share"],
+        "binomial_p_value": json_number(share["binomial_p_value"]),
+        "shift": bool(shift),
+        "rule": "shift when either p-value < 0.025 (0.05 split over the two tests, Bonferroni)",
+    }
+    if record and bank.path is not None:
+        entry = {"time": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()} | result
+        with open(Path(bank.path) / HISTORY_FILE, "a", encoding="utf-8") as f:
+            f.write(json.dumps(entry, sort_keys=True) + "\n")
+    return result
+
+
+def drift_history(bank_path: str | os.PathLike) -> list[dict]:
+    bank = load_bank(bank_path)
+    path = Path(bank_path) / HISTORY_FILE
+    if not path.is_file():
+        raise OddlingError(f"{bank_path} has no drift history yet; run `oddling drift INCOMING --bank {bank_path}`")
+    entries = []
+    for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+        if not line.strip():
+            continue
+        try:
+            entries.append(json.loads(line))
+        except json.JSONDecodeError:
+            raise OddlingError(f"{path} line {number} is not JSON; remove or repair that line") from None
+    return [e | {"expected_share": e.get("expected_share", bank.target_fpr)} for e in entries]

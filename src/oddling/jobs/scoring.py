@@ -1,0 +1,156 @@
+"""score: every file of a folder against a bank -> rows sorted by score, with p-values, flags and evidence."""
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from oddling.bank.store import Bank, load_bank
+from oddling.data.health import health_findings, health_text
+from oddling.errors import OddlingError
+from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, load_bank_representation,
+                                 warn_if_few_calibration)
+from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows, write_text
+
+
+def as_bank(bank: Bank | str | os.PathLike) -> Bank:
+    return bank if isinstance(bank, Bank) else load_bank(bank)
+
+
+@dataclass
+class ScoreResult:
+    """Scored files, sorted highest score first; unreadable files at the end with their status."""
+
+    rows: list[ScoreRow]
+    bank: Bank
+    target_fpr: float
+    cutoff: float
+    root: Path
+
+    @property
+    def scored(self) -> list[ScoreRow]:
+        return [r for r in self.rows if r.score is not None]
+
+    def summary(self) -> dict:
+        scores = [r.score for r in self.scored]
+        return {
+            "bank": str(self.bank.path) if self.bank.path else None,
+            "backbone": self.bank.backbone["id"],
+            "representation": self.bank.representation["id"],
+            "detector": self.bank.detector.name,
+            "params": self.bank.detector.get_params(),
+            "n_references": self.bank.size,
+            "n_files": len(self.rows),
+            "n_scored": len(scores),
+            "n_skipped": len(self.rows) - len(scores),
+            "n_flagged": sum(bool(r.flagged) for r in self.rows),
+            "target_fpr": self.target_fpr,
+            "cutoff": json_number(self.cutoff),
+            "score_min": json_number(min(scores)) if scores else None,
+            "score_max": json_number(max(scores)) if scores else None,
+        }
+
+    def to_csv(self) -> str:
+        return rows_to_csv(self.rows)
+
+    def write_csv(self, path: str | os.PathLike, force: bool = False) -> Path:
+        return write_text(Path(path), self.to_csv(), force=force)
+
+    def anomaly_map(self, path: str) -> np.ndarray:
+        """The (height, width) anomaly map of the scored file `path` (as in the rows), for detectors
+        that score locations (the patch detector); same units as the score."""
+        return anomaly_map(self.bank, self.root, next(r for r in self.rows if r.path == path))
+
+    def write_maps(self, out_dir: str | os.PathLike) -> list[Path]:
+        """One heatmap overlay PNG per scored file, at its relative path with ".png" appended (kept
+        as is for a .png), so a.jpg and a.png never overwrite each other. Colours run from 0 to the
+        batch's highest score, so maps of one batch compare."""
+        from oddling.data.intake import load_rgb
+        from oddling.detectors.patch import overlay
+
+        if not any(r.anomaly_grid is not None for r in self.scored) and self.scored:
+            raise OddlingError(f"anomaly maps need a detector that scores locations (patch-knn); this bank's "
+                               f"detector is {self.bank.detector.name}")
+        out, written = Path(out_dir), []
+        vmax = max((r.score for r in self.scored), default=1.0)
+        for row in self.scored:
+            target = out / (row.path if row.path.lower().endswith(".png") else f"{row.path}.png")
+            target.parent.mkdir(parents=True, exist_ok=True)
+            image = load_rgb(self.root / row.path)
+            overlay(image, anomaly_map(self.bank, self.root, row, image.size), vmax).save(target)
+            written.append(target)
+        return written
+
+
+def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | None = None) -> np.ndarray:
+    from oddling.detectors.patch import upsample_map
+
+    if row.anomaly_grid is None:
+        raise OddlingError(f"{row.path} has no anomaly map (needs a patch-detector bank and a readable image)")
+    if size is None:
+        from oddling.data.intake import load_rgb
+
+        size = load_rgb(root / row.path).size   # as decoded: EXIF orientation applied
+    return upsample_map(row.anomaly_grid, size, bank.representation["preprocessing"]["crop"])
+
+
+def score_features(bank: Bank, features: np.ndarray, target_fpr: float | None = None):
+    """(Scores, p-values, flags, threshold) of feature rows against the bank."""
+    threshold = bank.threshold(target_fpr)
+    scored = bank.detector.anomaly_score(features)
+    return scored, threshold.p_values(scored.scores), threshold.flag(scored.scores), threshold
+
+
+def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None) -> tuple[list[ScoreRow], float]:
+    threshold = bank.threshold(target_fpr)
+    if not embedded.ok_records:
+        return [ScoreRow(path=r.path, status=r.status, sha256=r.sha256) for r in embedded.records], threshold.cutoff
+    scored, p_values, flagged, _ = score_features(bank, embedded.embeddings, target_fpr)
+    rows = []
+    for rec in embedded.records:
+        row = ScoreRow(path=rec.path, status=rec.status, sha256=rec.sha256)
+        if rec.row is not None:
+            i = rec.row
+            row.health = health_text(health_findings(embedded.health_of(rec), bank.health_fences))
+            row.score = float(scored.scores[i])
+            row.p_value = float(p_values[i])
+            row.flagged = bool(flagged[i])
+            if scored.neighbour_rows is not None:
+                row.nearest = [bank.references[j]["path"] for j in scored.neighbour_rows[i]]
+                row.nearest_distances = [float(d) for d in scored.neighbour_distances[i]]
+            if scored.maps is not None:
+                row.anomaly_grid = scored.maps[i]
+        rows.append(row)
+    return rows, threshold.cutoff
+
+
+def score(
+    incoming_dir: str | os.PathLike,
+    bank: Bank | str | os.PathLike,
+    *,
+    target_fpr: float | None = None,
+    backbone: str | None = None,
+    options: RunOptions | None = None,
+) -> ScoreResult:
+    """Score every file under `incoming_dir` against the bank.
+
+    score = the bank's detector score (higher = more anomalous; `bank.detector.describe_score()`
+    says what it measures); p_value = conformal p-value against the bank's calibration scores;
+    flagged = p_value <= target_fpr (the bank's rate unless overridden).
+    """
+    options = options or RunOptions()
+    incoming_dir = folder(incoming_dir, "incoming folder")
+    bank = as_bank(bank)
+    if target_fpr is not None:
+        target_fpr = check_rate(target_fpr)
+    warn_if_few_calibration(len(bank.calibration_scores), target_fpr or bank.target_fpr)
+    if backbone is not None and backbone != bank.backbone["id"]:
+        raise OddlingError(f"bank {bank.path or ''} was made with {bank.backbone['id']!r}, not {backbone!r}; "
+                           "scores from different backbones cannot be compared")
+    rep = load_bank_representation(bank, options)
+    exclude = (bank.path,) if bank.path else ()
+    embedded = embed_folder(incoming_dir, rep, options, "scoring", exclude)
+    rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
+    return ScoreResult(sort_rows(rows), bank, target_fpr or bank.target_fpr, cutoff, incoming_dir)
