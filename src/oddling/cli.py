@@ -455,12 +455,16 @@ def backbones_list(as_json):
     specs = load_manifest()
     if as_json:
         _print_json({sid: {"family": s.family, "embedding_dim": s.embedding_dim, "source": s.weights["source"],
-                           "licence": s.licence} for sid, s in specs.items()})
+                           "licence": s.licence,
+                           "stages": [{"name": name} | info for name, info in s.stages.items()]}
+                     for sid, s in specs.items()})
         return
     for sid, s in specs.items():
         default = " (default)" if sid == DEFAULT_BACKBONE else ""
+        stages = ", ".join(f"{name} ({info['channels']} ch, stride {info['stride']})"
+                           for name, info in s.stages.items()) or "none"
         click.echo(f"{sid}{default}\n  {s.description}\n  dim {s.embedding_dim}, weights: {s.weights['source']}, "
-                   f"licence: {s.licence}")
+                   f"licence: {s.licence}\n  stages: {stages}")
 
 
 @backbones.command("import")
