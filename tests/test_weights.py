@@ -34,6 +34,16 @@ def test_embedded_weights_checksum_matches_manifest(tmp_path):
     assert sha == "579344248a93e23026e6b78f1f6faf0bc1d282386f6c881cdbaacd49cabf77db"   # measured on the package file
 
 
+@pytest.mark.parametrize("backbone_id, sha256", [
+    ("efficientnet-lite1", "77cc7160d37bebc1e0d68dc9e8d1e836a263e063f0825ec80d85670b2c913850"),
+    ("efficientnet-lite2", "9656183eaeafe8cbf0cf560089305d34668787f6a26377ccbe5be192ed3f855d"),
+])
+def test_scaled_lite_weights_checksum_matches_manifest(tmp_path, backbone_id, sha256):
+    path, sha = resolve_weights(get_spec(backbone_id), tmp_path)
+    assert sha == sha256   # measured with sha256sum on the package file
+    assert path.name == get_spec(backbone_id).weights["filename"]
+
+
 def test_tampered_weights_refused(tmp_path):
     spec = get_spec("efficientnet-lite0")
     bad = dataclasses.replace(spec, weights=dict(spec.weights, sha256="0" * 64))

@@ -1,11 +1,13 @@
 """Backbone registry: manifest entry -> verified weights -> network that maps images to embeddings.
 
 Each family (one module per network type) provides `build(spec, weights_path) -> nn.Module`
-whose `features(x)` returns one vector per image. Families are looked up by the manifest's
-`family` field.
+whose `features(x)` returns one vector per image and whose `forward_intermediates(x, stages)`
+returns the (N, C, H, W) outputs of the named stages the manifest lists (OddlingError for a
+network that exposes none). Families are looked up by the manifest's `family` field.
 """
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
@@ -64,6 +66,11 @@ class Backbone:
     def embedding_dim(self) -> int:
         return self.spec.embedding_dim
 
+    @property
+    def stages(self) -> dict[str, dict]:
+        """Intermediate stages from the manifest: name -> {"channels", "stride"}, network order."""
+        return self.spec.stages
+
     def fingerprint(self) -> dict:
         """What a bank records to refuse mixing embeddings from different networks."""
         return {
@@ -79,6 +86,16 @@ class Backbone:
         if self.channels_last:
             x = x.contiguous(memory_format=torch.channels_last)
         return self.network.features(x).float().numpy()
+
+    @torch.inference_mode()
+    def torch_intermediates(self, batch: np.ndarray, stages: Sequence[str]) -> list[np.ndarray]:
+        """(N, 3, H, W) preprocessed float32 -> the (N, C, H/stride, W/stride) outputs of `stages`,
+        in the order asked, as float32 arrays."""
+        x = torch.from_numpy(np.ascontiguousarray(batch, dtype=np.float32))
+        if self.channels_last:
+            x = x.contiguous(memory_format=torch.channels_last)
+        outputs = self.network.forward_intermediates(x, stages)
+        return [np.ascontiguousarray(y.float().numpy()) for y in outputs]
 
     def embed(self, batch: np.ndarray) -> np.ndarray:
         """(N, 3, H, W) preprocessed float32 -> (N, D) float32 L2-normalised embeddings."""

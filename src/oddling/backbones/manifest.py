@@ -16,7 +16,11 @@ MANIFEST_NAME = "models_manifest.yaml"
 
 @dataclass(frozen=True)
 class BackboneSpec:
-    """One manifest entry. `weights` is the raw mapping: source, filename, sha256, ..."""
+    """One manifest entry. `weights` is the raw mapping: source, filename, sha256, ...
+
+    `stages` maps each intermediate stage the network exposes, in network order, to
+    {"channels": C, "stride": S} (its output is (N, C, H/S, W/S)); empty when none are listed.
+    """
 
     id: str
     family: str
@@ -27,6 +31,7 @@ class BackboneSpec:
     embedding_dim: int
     licence: str
     architecture: str | None = None
+    stages: dict[str, dict] = field(default_factory=dict)
     extra: dict = field(default_factory=dict)
 
 
@@ -41,11 +46,25 @@ def manifest_path() -> Path:
     raise OddlingError(f"{MANIFEST_NAME} not found in the installed package; reinstall oddling")
 
 
+def parse_stages(backbone_id: str, data) -> dict[str, dict]:
+    """The `stages` mapping of one entry, in the manifest's order, each {channels, stride} as ints."""
+    if not data:
+        return {}
+    if not isinstance(data, dict):
+        raise ValueError(f"backbone {backbone_id!r}: `stages` must be a mapping of stage name to channels/stride")
+    stages = {}
+    for name, info in data.items():
+        if not isinstance(info, dict) or set(info) != {"channels", "stride"}:
+            raise ValueError(f"backbone {backbone_id!r}: stage {name!r} needs exactly `channels` and `stride`")
+        stages[str(name)] = {"channels": int(info["channels"]), "stride": int(info["stride"])}
+    return stages
+
+
 def parse_manifest(text: str) -> dict[str, BackboneSpec]:
     data = yaml.safe_load(text)
     specs: dict[str, BackboneSpec] = {}
     known = {"id", "family", "description", "weights", "input_size", "preprocessing",
-             "embedding_dim", "licence", "architecture"}
+             "embedding_dim", "licence", "architecture", "stages"}
     for entry in data.get("backbones", []):
         spec = BackboneSpec(
             id=entry["id"],
@@ -57,6 +76,7 @@ def parse_manifest(text: str) -> dict[str, BackboneSpec]:
             embedding_dim=int(entry["embedding_dim"]),
             licence=str(entry.get("licence", "unknown")),
             architecture=entry.get("architecture"),
+            stages=parse_stages(entry["id"], entry.get("stages")),
             extra={k: v for k, v in entry.items() if k not in known},
         )
         if spec.id in specs:

@@ -1,7 +1,9 @@
 """OpenCLIP image encoders (Cherti et al., "Reproducible scaling laws for contrastive
-language-image learning", CVPR 2023). Only the image tower is kept; its output is the embedding."""
+language-image learning", CVPR 2023). Only the image tower is kept; its output is the embedding.
+The towers expose no intermediate stages: their manifest entries list none."""
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 
 import torch
@@ -13,12 +15,16 @@ from oddling.errors import OddlingError
 class ImageTower(nn.Module):
     """Wraps open_clip's visual encoder so it offers `features(x)` like every oddling backbone."""
 
-    def __init__(self, visual: nn.Module):
+    def __init__(self, visual: nn.Module, name: str = "open_clip"):
         super().__init__()
         self.visual = visual
+        self.name = name
 
     def features(self, x: torch.Tensor) -> torch.Tensor:
         return self.visual(x)
+
+    def forward_intermediates(self, x: torch.Tensor, stages: Sequence[str]) -> list[torch.Tensor]:
+        raise OddlingError(f"backbone {self.name} exposes no intermediate stages")
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         return self.features(x)
@@ -50,4 +56,4 @@ def build(spec, weights_path: Path) -> ImageTower:
             f"weight file {weights_path} does not fit open_clip architecture {spec.architecture!r}: "
             f"{str(exc).splitlines()[0]}"
         ) from exc
-    return ImageTower(model.visual).eval()
+    return ImageTower(model.visual, name=spec.id).eval()

@@ -24,13 +24,30 @@ def backbones_list(as_json):
     """Every backbone in the manifest."""
     specs = load_manifest()
     if as_json:
-        _print_json({sid: {"family": s.family, "embedding_dim": s.embedding_dim, "source": s.weights["source"],
-                           "licence": s.licence} for sid, s in specs.items()})
+        _print_json({"backbones": {sid: {"family": s.family, "embedding_dim": s.embedding_dim,
+                                         "source": s.weights["source"], "licence": s.licence,
+                                         "stages": [{"name": name} | info for name, info in s.stages.items()],
+                                         "representations": _representations(sid, s)}
+                                   for sid, s in specs.items()},
+                     "other_representations": ["pixels:SIZE", "pixels:SIZE:rgb"]})
         return
     for sid, s in specs.items():
         default = " (default)" if sid == DEFAULT_BACKBONE else ""
+        stages = ", ".join(f"{name} ({info['channels']} ch, stride {info['stride']})"
+                           for name, info in s.stages.items()) or "none"
         click.echo(f"{sid}{default}\n  {s.description}\n  dim {s.embedding_dim}, weights: {s.weights['source']}, "
-                   f"licence: {s.licence}")
+                   f"licence: {s.licence}\n  stages: {stages}\n  representations: "
+                   + ", ".join(_representations(sid, s)))
+    click.echo("pixels\n  A small thumbnail, zero-mean and unit-norm per image; no network. For small, aligned "
+               "images.\n  representations: pixels:SIZE (grey, e.g. pixels:32), pixels:SIZE:rgb")
+
+
+def _representations(sid: str, spec) -> list[str]:
+    """Examples of what --representation accepts for this backbone."""
+    out = [sid]
+    if spec.stages:
+        out += [f"{sid}/stages:STAGE+STAGE...", f"{sid}/patches:stage2+stage3"]
+    return out
 
 
 @backbones.command("import")

@@ -43,23 +43,22 @@ def grid_size(crop: int) -> int:
 
 
 @torch.inference_mode()
-def patch_features(network, batch: np.ndarray, layers: tuple[int, ...] = LAYERS) -> np.ndarray:
+def patch_features(network, batch: np.ndarray, stages: tuple[str, ...] = ("stage2", "stage3")) -> np.ndarray:
     """(N, 3, S, S) preprocessed -> (N, G*G, C) float32 patch features, G = S/8.
 
-    Each stage output is averaged over its 3x3 neighbourhood (local context, as in PatchCore),
-    resized to the common grid and the channels concatenated.
+    `network.forward_intermediates` gives the named stages' outputs (the default: the ends of
+    the 24- and 40-channel stages, the same outputs as block indices LAYERS of Lite0); each is
+    averaged over its 3x3 neighbourhood (local context, as in PatchCore), resized to the common
+    grid and the channels concatenated in the order of `stages`.
     """
     x = torch.from_numpy(np.ascontiguousarray(batch, dtype=np.float32)).contiguous(memory_format=torch.channels_last)
-    x = F.relu6(network._bn0(network._conv_stem(x)))
     grid = grid_size(batch.shape[-1])
     outputs = []
-    for i, block in enumerate(network._blocks[:max(layers) + 1]):
-        x = block(x)
-        if i in layers:
-            y = F.avg_pool2d(x, 3, stride=1, padding=1, count_include_pad=False)
-            if y.shape[-1] != grid:
-                y = F.interpolate(y, size=(grid, grid), mode="bilinear", align_corners=False)
-            outputs.append(y)
+    for y in network.forward_intermediates(x, stages):
+        y = F.avg_pool2d(y, 3, stride=1, padding=1, count_include_pad=False)
+        if y.shape[-1] != grid:
+            y = F.interpolate(y, size=(grid, grid), mode="bilinear", align_corners=False)
+        outputs.append(y)
     feats = torch.cat(outputs, dim=1).permute(0, 2, 3, 1)
     return np.ascontiguousarray(feats.reshape(len(batch), grid * grid, -1).float().numpy())
 
