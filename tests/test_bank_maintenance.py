@@ -52,7 +52,7 @@ def test_add_then_remove_gives_back_the_original_bank(digits_folders, bank_copy,
     oddling.bank_remove(bank_copy, new_paths)
     back = oddling.load_bank(bank_copy)
     assert back.references == original.references
-    np.testing.assert_array_equal(back.embeddings, original.embeddings)
+    np.testing.assert_array_equal(back.features, original.features)
     np.testing.assert_allclose(back.calibration_scores, original.calibration_scores)
     assert back.calibration == original.calibration
 

@@ -84,7 +84,7 @@ def test_bank_with_other_backbone_refused(digits_bank, digits_folders, tmp_path)
     shutil.copytree(digits_bank.path, tmp_path / "b")
     meta_path = tmp_path / "b" / "bank.json"
     meta = json.loads(meta_path.read_text())
-    meta["backbone"]["weights_sha256"] = "f" * 64
+    meta["representation"]["backbone_fingerprint"]["weights_sha256"] = "f" * 64
     meta_path.write_text(json.dumps(meta))
     result = run("score", digits_folders["incoming"], "--bank", tmp_path / "b", "--out", tmp_path / "s.csv", "-q")
     assert result.exit_code == 2

@@ -14,7 +14,7 @@ SMALL = SceneCounts(reference=40, incoming_normal=8, incoming_anomalous=6, test_
 def test_demo_produces_every_result(tmp_path):
     import oddling
 
-    with pytest.warns(oddling.OddlingWarning, match="only 40 calibration images"):
+    with pytest.warns(oddling.OddlingWarning, match="40 calibration scores support target false-alarm rates >= 0.025"):
         out = run_demo(tmp_path / "demo", counts=SMALL, options=oddling.RunOptions(progress=False),
                        log=lambda m: None)
     for name in ("metrics.json", "scores.csv", "roc.png", "pr.png"):

@@ -30,7 +30,7 @@ def test_rows_sorted_by_score_descending_with_evidence(digits_folders, digits_ba
     assert scores == sorted(scores, reverse=True)
     reference_names = {p.name for p in digits_folders["reference"].iterdir()}
     assert all(r.nearest[0] in reference_names for r in result.rows)
-    assert all(len(r.nearest) == digits_bank.k for r in result.rows)
+    assert all(len(r.nearest) == digits_bank.detector.k for r in result.rows)
 
 
 def test_same_inputs_give_byte_identical_csv(digits_folders, digits_bank, tmp_path):

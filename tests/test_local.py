@@ -81,7 +81,7 @@ def scenario(tmp_path_factory):
 @pytest.fixture(scope="module")
 def local_bank(scenario, tmp_path_factory):
     path = tmp_path_factory.mktemp("banks") / "local.bank"
-    return oddling.fit(scenario["reference"], path, mode="local", options=OPTS)
+    return oddling.fit(scenario["reference"], path, detector="patch-knn", options=OPTS)
 
 
 @pytest.fixture(scope="module")
@@ -105,14 +105,14 @@ def test_local_mode_beats_global_mode_on_small_defects(scenario, local_result, c
 
 
 def test_coreset_keeps_auroc_of_the_full_patch_bank(scenario, local_bank, local_result, capsys):
-    full = oddling.fit(scenario["reference"], mode="local", coreset=1.0, options=OPTS)
+    full = oddling.fit(scenario["reference"], detector="patch-knn", params={"coreset": 1.0}, options=OPTS)
     full_auroc = _auroc(oddling.score(scenario["test"], full, options=OPTS))
     with capsys.disabled():
-        print(f"\n[brick] AUROC coreset {local_bank.local['coreset_fraction']} "
-              f"({local_bank.local['coreset_size']} of {local_bank.local['n_patches']} patches): "
+        print(f"\n[brick] AUROC coreset {local_bank.detector.coreset} "
+              f"({len(local_bank.detector.patches_)} of {local_bank.detector.n_patches_} patches): "
               f"{_auroc(local_result):.4f}, full bank {full_auroc:.4f}")
-    assert full.local["coreset_size"] == full.local["n_patches"]
-    assert local_bank.local["coreset_size"] == round(0.1 * local_bank.local["n_patches"])
+    assert len(full.detector.patches_) == full.detector.n_patches_
+    assert len(local_bank.detector.patches_) == round(0.1 * local_bank.detector.n_patches_)
     assert _auroc(local_result) >= full_auroc - 0.01
 
 
@@ -141,13 +141,13 @@ def test_maps_light_up_the_drawn_defects(scenario, local_result, capsys):
 
 def test_local_bank_records_mode_and_split_calibration_and_reloads(local_bank, local_result, scenario):
     reloaded = load_bank(local_bank.path)
-    assert reloaded.mode == "local"
-    assert reloaded.local == local_bank.local
+    assert reloaded.detector.name == "patch-knn" and reloaded.representation["kind"] == "patches"
+    assert reloaded.detector.state()[0] == local_bank.detector.state()[0]
     assert reloaded.calibration["method"].startswith("split")
-    held_out = set(reloaded.calibration["references"])
+    held_out = {reloaded.references[i]["path"] for i in reloaded.detector.calibration_rows_}
     assert len(held_out) == reloaded.calibration["n"] == 10   # 20% of 50
     # Held-out references contribute no patch to the bank.
-    bank_refs = {reloaded.references[i]["path"] for i in np.unique(reloaded.patch_sources)}
+    bank_refs = {reloaded.references[i]["path"] for i in np.unique(reloaded.detector.sources_)}
     assert not bank_refs & held_out
     again = oddling.score(scenario["test"], reloaded, options=OPTS)
     assert [r.score for r in again.rows] == [r.score for r in local_result.rows]
