@@ -7,11 +7,11 @@ __version__ = "0.1.0"
 
 from .api import (  # noqa: E402
     EvaluationResult, OddlingWarning, RunOptions, ScoreResult, audit, bank_add, bank_info, bank_remove, drift,
-    drift_history, evaluate, fit, score,
+    drift_history, evaluate, fit, score, tune, TuneResult,
 )
 from oddling.bank.store import Bank, load_bank  # noqa: E402
 from oddling.errors import OddlingError  # noqa: E402
 
 __all__ = ["__version__", "Bank", "EvaluationResult", "OddlingError", "OddlingWarning", "RunOptions", "ScoreResult",
            "audit", "bank_add", "bank_info", "bank_remove", "drift", "drift_history", "evaluate", "fit",
-           "load_bank", "score"]
+           "load_bank", "score", "tune", "TuneResult"]

@@ -22,7 +22,7 @@ def main():
 
 
 
-for command in (analysis.fit, analysis.score, analysis.evaluate, analysis.report, demo.demo, demo.bench,
+for command in (analysis.fit, analysis.score, analysis.evaluate, analysis.report, analysis.tune, demo.demo, demo.bench,
                 upkeep.drift, upkeep.audit, upkeep.bank_group, backbones.backbones):
     main.add_command(command)
 

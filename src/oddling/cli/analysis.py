@@ -217,3 +217,56 @@ def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top
     click.echo(f"Review page: {path}", err=True)
 
 
+
+
+@click.command()
+@click.argument("test_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--reference", "reference_dir", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="Folder of known-normal images every configuration is fitted on.")
+@click.option("--bank", "bank_path", required=True, type=click.Path(path_type=Path),
+              help="Folder to write the chosen configuration's bank into; the leaderboard goes beside it.")
+@click.option("--labels", "labels_csv", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
+              help="CSV with path,label instead of class subfolders.")
+@click.option("--normal-label", "normal_labels", multiple=True, default=("normal",), show_default=True,
+              help="Subfolder name that holds normal images (repeatable).")
+@click.option("--representation", "representations", multiple=True,
+              help="Representation to try (repeatable) [default: a grid of EfficientNet-Lite0 embedding, pooled "
+                   "stages, patches, and pixels:32].")
+@click.option("--budget", "budget_minutes", type=click.FloatRange(min=0, min_open=True), default=None,
+              help="Stop trying new representations after this many minutes; keep the best so far.")
+@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
+              show_default=True, help="False-alarm rate the chosen bank's cutoff is calibrated for.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the choose / hold-out split.")
+@click.option("--json", "as_json", is_flag=True, help="Print the chosen configuration and leaderboard as JSON.")
+@click.option("--force", is_flag=True, help="Replace an existing bank and leaderboard.")
+@run_options
+@user_errors
+def tune(test_dir, reference_dir, bank_path, labels_csv, normal_labels, representations, budget_minutes, target_fpr,
+         seed, as_json, force, **run):
+    """Find the representation and detector that best separate the labelled images in TEST_DIR."""
+    result = api.tune(test_dir, reference_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
+                      representations=list(representations) or None, budget_minutes=budget_minutes,
+                      target_fpr=target_fpr, seed=seed, force=force, options=_options(**run))
+    summary = result.summary()
+    if as_json:
+        _print_json(summary)
+        return
+    chosen = result.chosen
+    click.echo(f"{'rank':>4}  {'AUROC':>6}  {'95% CI':>13}  {'ms/img':>7}  configuration")
+    for i, t in enumerate(result.leaderboard, 1):
+        if t.auroc is None:
+            click.echo(f"{i:>4}  {'-':>6}  {'':>13}  {'':>7}  {t.representation} | {t.detector} {t.params}: {t.status}")
+            continue
+        low, high = t.auroc_ci95
+        click.echo(f"{i:>4}  {t.auroc:6.3f}  {low:6.3f}-{high:6.3f}  {t.ms_per_image:7.1f}  "
+                   f"{t.representation} | {t.detector} {t.params}")
+    click.echo(
+        f"\nChosen: {chosen.representation} | {chosen.detector} {chosen.params}\n"
+        f"  AUROC on the held-out half ({result.n_holdout['normal']} normal, {result.n_holdout['anomalous']} "
+        f"anomalous): {_num(result.holdout_auroc)}\n"
+        f"  The leaderboard's AUROCs come from the half used to choose ({result.n_choose['normal']} normal, "
+        f"{result.n_choose['anomalous']} anomalous): the best of them is optimistic.\n"
+        f"  Bank: {bank_path}; leaderboard: {result.files['leaderboard_csv']}\n"
+        f"  Reproduce: {chosen.fit_command()}"
+        + ("\n  Stopped early: the budget ran out before every configuration was tried." if result.stopped_early
+           else ""), err=True)

@@ -83,3 +83,34 @@ def plot_drift_history(entries: list[dict], expected_share: float, path: str | o
     fig.savefig(out)
     plt.close(fig)
     return out
+
+
+def plot_leaderboard(entries: list[dict], holdout_auroc: float | None, path: str | os.PathLike,
+                     top: int = 20) -> Path:
+    """Horizontal bars: AUROC with its 95% interval per configuration (best at the top), on the choosing half."""
+    shown = entries[:top][::-1]
+    fig, ax = plt.subplots(figsize=(8, 0.35 * len(shown) + 1.6))
+    names = [f"{e['representation']} | {e['detector']} {_params(e['params'])}" for e in shown]
+    values = [e["auroc"] for e in shown]
+    low = [e["auroc"] - (e["auroc_ci95"] or [e["auroc"]])[0] for e in shown]
+    high = [(e["auroc_ci95"] or [0, e["auroc"]])[1] - e["auroc"] for e in shown]
+    ax.barh(range(len(shown)), values, xerr=[low, high], color="#4c72b0", alpha=0.8, capsize=2)
+    ax.set_yticks(range(len(shown)), names, fontsize=7)
+    ax.set_xlim(max(0.0, min(values + [0.5]) - 0.05), 1.0)
+    ax.set_xlabel("AUROC on the choosing half (optimistic for the best)", fontsize=8)
+    if holdout_auroc is not None:
+        ax.axvline(holdout_auroc, color="#222222", ls="--", lw=1, label=f"chosen, held-out half: {holdout_auroc:.3f}")
+        ax.legend(fontsize=7, loc="lower right")
+    ax.set_title("Configurations compared by oddling tune", fontsize=9)
+    ax.grid(True, axis="x", alpha=0.3)
+    fig.tight_layout()
+    path = Path(path)
+    try:
+        fig.savefig(path, dpi=_DPI)
+    finally:
+        plt.close(fig)
+    return path
+
+
+def _params(params: dict) -> str:
+    return ", ".join(f"{k}={v}" for k, v in params.items())

@@ -1,0 +1,287 @@
+"""tune: compare representations x detectors on the user's own labelled images and keep the winner.
+
+No single outlier method suits all data: kNN distances, Gaussian (Mahalanobis) distances,
+reconstruction residuals and isolation forests each win somewhere, and which features to feed
+them matters as much. So the comparison is run on the data at hand, honestly:
+
+- every configuration is fitted on the reference folder only and scores the labelled folder;
+- the configuration is *chosen* on a seeded half of the labelled images (stratified by class)
+  and its AUROC is then reported on the other half (`holdout_auroc`), which played no part in
+  the choice; the leaderboard's figures, measured on the choosing half, are optimistic because
+  the best of many is picked there;
+- near ties (AUROC within TIE of the best) go to the cheaper configuration (ms per image).
+"""
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from oddling.backbones.representation import RepresentationSpec, load_representation
+from oddling.bank.store import save_bank
+from oddling.data.intake import IntakeError, discover
+from oddling.detectors import make_detector
+from oddling.embedding.runner import OK
+from oddling.errors import OddlingError
+from oddling.jobs.common import RunOptions, check_rate, embed_paths, folder, refuse_existing
+from oddling.jobs.evaluation import attach_labels
+from oddling.reporting.results import ScoreRow, json_number, write_text
+
+MIN_PER_CLASS = 10     # below this an AUROC, let alone a choice between configurations, means little
+TIE = 0.005            # AUROC differences this small are noise at the usual test-set sizes
+
+# (representation, [(detector, params), ...]); vector detectors for vector representations.
+VECTOR_DETECTORS = [("knn", {"k": 1}), ("knn", {"k": 5}), ("gaussian", {}), ("pca", {"variance": 0.95}),
+                    ("pca", {"variance": 0.99}), ("iforest", {})]
+PATCH_DETECTORS = [("patch-knn", {"coreset": 0.1})]
+DEFAULT_REPRESENTATIONS = ["efficientnet-lite0", "efficientnet-lite0/stages:stage3+stage5+head", "pixels:32",
+                           "efficientnet-lite0/patches:stage2+stage3", "efficientnet-lite0/patches:stage3+stage4"]
+
+
+@dataclass
+class Trial:
+    representation: str
+    detector: str
+    params: dict
+    auroc: float | None = None          # on the choosing half
+    auroc_ci95: list | None = None
+    ms_per_image: float | None = None   # features + scoring, per image of the labelled folder
+    status: str = "ok"
+    bank: object = field(default=None, repr=False)
+    scores: np.ndarray | None = field(default=None, repr=False)     # of the readable labelled images
+    readable: np.ndarray | None = field(default=None, repr=False)
+
+    def to_dict(self) -> dict:
+        return {"representation": self.representation, "detector": self.detector, "params": self.params,
+                "auroc": json_number(self.auroc), "auroc_ci95": [json_number(v) for v in self.auroc_ci95 or []] or None,
+                "ms_per_image": json_number(self.ms_per_image, 2), "status": self.status}
+
+    def fit_command(self) -> str:
+        params = " ".join(f"--param {k}={json.dumps(v)}" for k, v in self.params.items())
+        return f"oddling fit REF_DIR --bank OUT --representation {self.representation} --detector {self.detector} {params}".strip()
+
+
+@dataclass
+class TuneResult:
+    chosen: Trial
+    leaderboard: list[Trial]      # best first; failed and untried configurations last
+    holdout_auroc: float | None
+    holdout_auroc_ci95: list | None
+    n_choose: dict
+    n_holdout: dict
+    bank_path: Path | None
+    files: dict = field(default_factory=dict)
+    stopped_early: bool = False
+
+    def summary(self) -> dict:
+        return {
+            "chosen": self.chosen.to_dict() | {"fit_command": self.chosen.fit_command()},
+            "holdout_auroc": json_number(self.holdout_auroc),
+            "holdout_auroc_ci95": [json_number(v) for v in self.holdout_auroc_ci95] if self.holdout_auroc_ci95 else None,
+            "leaderboard": [t.to_dict() for t in self.leaderboard],
+            "n_choose": self.n_choose, "n_holdout": self.n_holdout,
+            "bank": str(self.bank_path) if self.bank_path else None,
+            "files": {k: str(v) for k, v in self.files.items()},
+            "stopped_early": self.stopped_early,
+            "note": ("leaderboard AUROCs are measured on the half of the labelled images used to choose, so the "
+                     "best of them is optimistic; holdout_auroc is measured on the other half, which played no part "
+                     "in the choice"),
+        }
+
+
+def default_grid(representations: list[str] | None = None) -> list[tuple[str, str, dict]]:
+    grid = []
+    for rep in representations or DEFAULT_REPRESENTATIONS:
+        spec = RepresentationSpec.parse(rep)
+        for name, params in (PATCH_DETECTORS if spec.feature_kind == "patches" else VECTOR_DETECTORS):
+            grid.append((spec.id, name, dict(params)))
+    return grid
+
+
+def split_halves(labels: np.ndarray, seed: int) -> np.ndarray:
+    """True for the choosing half: each class shuffled (seeded) and split in two."""
+    rng = np.random.default_rng(seed)
+    choose = np.zeros(len(labels), dtype=bool)
+    for value in (0, 1):
+        rows = rng.permutation(np.flatnonzero(labels == value))
+        choose[rows[: (len(rows) + 1) // 2]] = True
+    return choose
+
+
+def _auroc_with_ci(labels: np.ndarray, scores: np.ndarray) -> tuple[float, list]:
+    from oddling.evaluation.metrics import auroc, delong_ci
+
+    return auroc(labels, scores), list(delong_ci(labels, scores))
+
+
+def rank(trials: list[Trial]) -> list[Trial]:
+    """Best AUROC first; among those within TIE of the best, the cheapest first; failures last."""
+    done = [t for t in trials if t.auroc is not None]
+    rest = [t for t in trials if t.auroc is None]
+    if not done:
+        return rest
+    best = max(t.auroc for t in done)
+    ties = sorted((t for t in done if t.auroc >= best - TIE), key=lambda t: (t.ms_per_image or 0.0, -t.auroc))
+    others = sorted((t for t in done if t.auroc < best - TIE), key=lambda t: (-t.auroc, t.ms_per_image or 0.0))
+    return ties + others + rest
+
+
+def _labelled_paths(test_dir: Path, labels_csv, normal_labels) -> tuple[list[Path], np.ndarray, list[str]]:
+    try:
+        paths = discover(test_dir)
+    except IntakeError as exc:
+        raise OddlingError(exc.status) from exc
+    rows = [ScoreRow(path=p.relative_to(test_dir).as_posix(), status=OK) for p in paths]
+    attach_labels(rows, labels_csv, normal_labels)
+    keep = [(p, r) for p, r in zip(paths, rows) if r.label is not None]
+    labels = np.array([r.label for _, r in keep], dtype=np.int64)
+    n0, n1 = int((labels == 0).sum()), int((labels == 1).sum())
+    if n0 < MIN_PER_CLASS or n1 < MIN_PER_CLASS:
+        raise OddlingError(
+            f"{test_dir} has {n0} normal and {n1} anomalous labelled images; tune needs at least {MIN_PER_CLASS} of "
+            f"each (half of them choose, half check the choice). Normal folders: {', '.join(normal_labels)}")
+    return [p for p, _ in keep], labels, [r.path for _, r in keep]
+
+
+def tune(
+    test_dir: str | os.PathLike,
+    reference_dir: str | os.PathLike,
+    bank_path: str | os.PathLike | None = None,
+    *,
+    labels_csv: str | os.PathLike | None = None,
+    normal_labels: tuple[str, ...] = ("normal",),
+    representations: list[str] | None = None,
+    grid: list[tuple[str, str, dict]] | None = None,
+    budget_minutes: float | None = None,
+    target_fpr: float = 0.01,
+    seed: int = 0,
+    force: bool = False,
+    options: RunOptions | None = None,
+) -> TuneResult:
+    """Try a grid of representation x detector x parameters; keep the one that separates the labelled
+    images best, fitted on all of `reference_dir`, as the bank at `bank_path`.
+
+    Labels come from `test_dir` as `evaluate` reads them. See the module docstring for how the
+    choice is kept honest (`holdout_auroc`).
+    """
+    from oddling.jobs.fitting import build_bank, check_pairing
+
+    options = options or RunOptions()
+    test_dir, reference_dir = folder(test_dir, "test folder"), folder(reference_dir, "reference folder")
+    target_fpr = check_rate(target_fpr)
+    if budget_minutes is not None and budget_minutes <= 0:
+        raise OddlingError(f"budget must be > 0 minutes, got: {budget_minutes}")
+    files = {}
+    if bank_path is not None:
+        bank_path = Path(bank_path)
+        files = {"leaderboard_csv": bank_path.with_name(bank_path.name + ".leaderboard.csv"),
+                 "leaderboard_json": bank_path.with_name(bank_path.name + ".leaderboard.json"),
+                 "figure": bank_path.with_name(bank_path.name + ".leaderboard.png")}
+        refuse_existing(bank_path, *files.values(), force=force)
+    grid = grid or default_grid(representations)
+    for rep, name, params in grid:        # every configuration checked before any work starts
+        check_pairing(RepresentationSpec.parse(rep), make_detector(name, params))
+    test_paths, labels, test_names = _labelled_paths(test_dir, labels_csv, normal_labels)
+    choose = split_halves(labels, seed)
+    exclude = (bank_path,) if bank_path is not None else ()
+    ref_paths = discover(reference_dir, exclude=exclude)
+
+    started = time.monotonic()
+    trials: list[Trial] = []
+    stopped = False
+    from tqdm import tqdm
+
+    bar = tqdm(total=len(grid), desc="tuning", unit="config", file=sys.stderr, disable=not options.progress,
+               leave=False)
+    quiet = RunOptions(**{**options.__dict__, "progress": False})
+    try:
+        for rep_id in dict.fromkeys(r for r, _, _ in grid):
+            configs = [(n, p) for r, n, p in grid if r == rep_id]
+            if stopped or (budget_minutes is not None and time.monotonic() - started > 60 * budget_minutes):
+                stopped = True
+                trials += [Trial(rep_id, n, p, status="not tried: budget used up") for n, p in configs]
+                bar.update(len(configs))
+                continue
+            bar.set_postfix_str(rep_id)
+            try:
+                representation = load_representation(rep_id, options.cache_dir, options.runtime)
+                refs = embed_paths(reference_dir, ref_paths, representation, quiet, "references")
+                t0 = time.perf_counter()
+                test = embed_paths(test_dir, test_paths, representation, quiet, "labelled images")
+                embed_ms = 1000 * (time.perf_counter() - t0) / max(1, len(test_paths))
+            except OddlingError as exc:
+                trials += [Trial(rep_id, n, p, status=f"failed: {exc}") for n, p in configs]
+                bar.update(len(configs))
+                continue
+            readable = np.array([r.row is not None for r in test.records])
+            for name, params in configs:
+                trial = Trial(rep_id, name, params)
+                try:
+                    bank = build_bank(refs, representation, make_detector(name, params), target_fpr, reference_dir)
+                    t0 = time.perf_counter()
+                    scores = bank.detector.anomaly_score(test.embeddings).scores
+                    trial.ms_per_image = embed_ms + 1000 * (time.perf_counter() - t0) / max(1, len(scores))
+                    use = choose[readable]
+                    trial.auroc, trial.auroc_ci95 = _auroc_with_ci(labels[readable][use], scores[use])
+                    trial.bank, trial.scores, trial.readable = bank, scores, readable
+                except OddlingError as exc:
+                    trial.status = f"failed: {exc}"
+                trials.append(trial)
+                bar.update(1)
+    finally:
+        bar.close()
+    board = rank(trials)
+    chosen = board[0]
+    if chosen.auroc is None:
+        raise OddlingError("no configuration could be fitted and scored; first failure: "
+                           + next((t.status for t in trials if t.status != "ok"), "none"))
+    held = ~choose
+    holdout, holdout_ci = _holdout(chosen, labels, held)
+    result = TuneResult(chosen, board, holdout, holdout_ci,
+                        {"normal": int(((labels == 0) & choose).sum()), "anomalous": int(((labels == 1) & choose).sum())},
+                        {"normal": int(((labels == 0) & held).sum()), "anomalous": int(((labels == 1) & held).sum())},
+                        bank_path, files, stopped)
+    if bank_path is not None:
+        save_bank(chosen.bank, bank_path, force=force)
+        write_leaderboard(result)
+    return result
+
+
+def _holdout(trial: Trial, labels: np.ndarray, held: np.ndarray) -> tuple[float | None, list | None]:
+    # Unreadable labelled files have no score: compare on the readable ones.
+    y, s = labels[trial.readable][held[trial.readable]], trial.scores[held[trial.readable]]
+    if not ((y == 0).any() and (y == 1).any()):
+        return None, None
+    auc, ci = _auroc_with_ci(y, s)
+    return auc, ci
+
+
+def leaderboard_csv(trials: list[Trial]) -> str:
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(["rank", "representation", "detector", "params", "auroc", "auroc_ci_low", "auroc_ci_high",
+                     "ms_per_image", "status"])
+    for i, t in enumerate(trials, 1):
+        low, high = (t.auroc_ci95 or [None, None])
+        writer.writerow([i, t.representation, t.detector, json.dumps(t.params, sort_keys=True),
+                         "" if t.auroc is None else f"{t.auroc:.6f}", "" if low is None else f"{low:.6f}",
+                         "" if high is None else f"{high:.6f}",
+                         "" if t.ms_per_image is None else f"{t.ms_per_image:.2f}", t.status])
+    return out.getvalue()
+
+
+def write_leaderboard(result: TuneResult) -> None:
+    from oddling.reporting.plots import plot_leaderboard
+
+    write_text(result.files["leaderboard_csv"], leaderboard_csv(result.leaderboard), force=True)
+    write_text(result.files["leaderboard_json"], json.dumps(result.summary(), indent=2, sort_keys=True) + "\n",
+               force=True)
+    plot_leaderboard([t.to_dict() for t in result.leaderboard if t.auroc is not None], result.holdout_auroc,
+                     result.files["figure"])
