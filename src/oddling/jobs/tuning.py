@@ -204,7 +204,9 @@ def tune(
     try:
         for rep_id in dict.fromkeys(r for r, _, _ in grid):
             configs = [(n, p) for r, n, p in grid if r == rep_id]
-            if stopped or (budget_minutes is not None and time.monotonic() - started > 60 * budget_minutes):
+            # The budget is checked between representations, once there is something to keep.
+            out_of_time = budget_minutes is not None and time.monotonic() - started > 60 * budget_minutes
+            if stopped or (out_of_time and any(t.auroc is not None for t in trials)):
                 stopped = True
                 trials += [Trial(rep_id, n, p, status="not tried: budget used up") for n, p in configs]
                 bar.update(len(configs))
