@@ -27,7 +27,7 @@ def test_audit_finds_planted_duplicates_near_duplicate_and_foreign_image(digits_
     shutil.copytree(digits_folders["reference"], refs)
     originals = sorted(refs.glob("*.png"))
     shutil.copy(originals[0], refs / "copy_of_first.png")                      # exact duplicate
-    Image.open(originals[1]).resize((60, 60)).save(refs / "resized_second.png")  # near duplicate
+    Image.open(originals[1]).convert("RGB").save(refs / "resized_second.jpg", quality=90)  # near duplicate: re-encoded
     Image.fromarray(skimage_data.astronaut()).resize((64, 64)).save(refs / "astronaut.png")  # foreign
     bank = oddling.fit(refs, tmp_path / "b", options=QUIET)
     result = CliRunner().invoke(main, ["audit", "--bank", str(tmp_path / "b"), "--json"])
@@ -35,7 +35,7 @@ def test_audit_finds_planted_duplicates_near_duplicate_and_foreign_image(digits_
     kinds = {(f["path"], f["kind"]) for f in json.loads(result.stdout)["findings"]}
     assert ("copy_of_first.png", "duplicate") in kinds or (originals[0].name, "duplicate") in kinds
     assert ("astronaut.png", "outlier") in kinds
-    assert any(kind == "near_duplicate" and "resized_second.png" in path + json.dumps(result.stdout)
+    assert any(kind == "near_duplicate" and "resized_second.jpg" in path + json.dumps(result.stdout)
                for path, kind in kinds)
     assert bank.size == len(originals) + 3
 

@@ -180,6 +180,10 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
             f"(95% CI {_num(low)}-{_num(high)}), average precision {_num(m['average_precision'])}.\n"
             f"At the bank's cutoff: precision {_num(c['precision'])}, recall {_num(c['recall'])}, "
             f"false-alarm rate {_num(c['fpr'])}.\nResults in {paths['metrics'].parent}", err=True)
+        if m.get("small_sample"):
+            click.echo(f"Few images ({m['n_normal']} normal, {m['n_anomalous']} anomalous): the interval "
+                       f"({m.get('auroc_ci_method', '')}) is wide; label more images before trusting these figures.",
+                       err=True)
         if m["unreadable"]:
             click.echo(f"{len(m['unreadable'])} unreadable files listed in metrics.json (not counted).", err=True)
 

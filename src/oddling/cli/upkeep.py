@@ -62,10 +62,15 @@ def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, 
 @click.command()
 @bank_option
 @click.option("--json", "as_json", is_flag=True, help="Print the findings as JSON (input for `bank remove`).")
+@click.option("--near-duplicate-factor", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.1,
+              show_default=True, help="Near duplicate: cosine distance below this share of the median "
+                                      "nearest-neighbour distance among the references.")
+@click.option("--max-hash-bits", type=click.IntRange(0, 64), default=12, show_default=True,
+              help="Near duplicate: perceptual hashes differing in at most this many of 256 bits.")
 @user_errors
-def audit(bank_path, as_json):
+def audit(bank_path, as_json, near_duplicate_factor, max_hash_bits):
     """Check the reference set itself: outliers, duplicates, near duplicates, unhealthy frames."""
-    result = api.audit(bank_path)
+    result = api.audit(bank_path, near_duplicate_factor=near_duplicate_factor, max_hash_bits=max_hash_bits)
     if as_json:
         _print_json(result)
         return

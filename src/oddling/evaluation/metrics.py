@@ -1,5 +1,6 @@
 """How well scores separate normal (label 0) from anomalous (label 1) samples: ROC and PR curves,
-AUROC with a DeLong confidence interval, rates and F-beta at a cutoff. Pure NumPy/SciPy.
+AUROC with a confidence interval (Newcombe's score interval; DeLong's variance too), rates and
+F-beta at a cutoff. Pure NumPy/SciPy: importing this module does not load the embedding code.
 
 Higher scores are more anomalous; a sample is predicted anomalous when its score is above the
 cutoff ("score > cutoff"), the same rule the bank uses to flag images. The curves equal
@@ -13,11 +14,15 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.optimize import brentq
 from scipy.stats import norm, rankdata
 
-from oddling.reporting.results import json_number
+from oddling.numbers import json_number
 
-CI_METHOD = "DeLong (1988), normal approximation"
+CI_METHOD = ("Newcombe (2006) method 5: score interval with the Hanley-McNeil variance "
+             "for a balanced design")
+_EDGE = 1e-12           # newcombe_ci: how far inside [0, 1] an AUROC of 0 or 1 is bracketed
+SMALL_SAMPLE_MIN = 20   # fewer normal or anomalous samples than this: the interval is wide, say so
 _TPR_AT_FPR_RATES = (0.01, 0.05)
 
 
@@ -170,9 +175,53 @@ def _delong_ci(y, s, level: float) -> tuple[float, float]:
 
 
 def delong_ci(labels, scores, level: float = 0.95) -> tuple[float, float]:
-    """(low, high): AUROC -/+ z * DeLong standard error, clipped to [0, 1]; NaN as delong_variance."""
+    """(low, high): AUROC -/+ z * DeLong standard error, clipped to [0, 1]; NaN as delong_variance.
+
+    A Wald interval: it shrinks to a point when the classes are perfectly separated (the variance is
+    then 0, so "1.000-1.000" from 10 vs 8 images) and covers too rarely at high AUROC and small n.
+    evaluation_summary reports newcombe_ci instead; this stays for comparison and large samples.
+    """
     y, s = _check(labels, scores)
     return _delong_ci(y, s, level)
+
+
+def newcombe_variance(theta: float, n_pos: int, n_neg: int) -> float:
+    """Hanley & McNeil's exponential-model variance of an AUROC of `theta`, both class sizes
+    replaced by their mean: theta(1-theta)/(mn) * (1 + (N*-1)((1-theta)/(2-theta) + theta/(1+theta))),
+    N* = (m+n)/2. Symmetric in the classes, so AUC and 1-AUC get mirror-image intervals."""
+    n_star = (n_pos + n_neg) / 2.0
+    shape = (1.0 - theta) / (2.0 - theta) + theta / (1.0 + theta)
+    return theta * (1.0 - theta) * (1.0 + (n_star - 1.0) * shape) / (n_pos * n_neg)
+
+
+def newcombe_ci(auc: float, n_pos: int, n_neg: int, level: float = 0.95) -> tuple[float, float]:
+    """(low, high): every theta in [0, 1] with (auc - theta)^2 <= z^2 newcombe_variance(theta).
+
+    A score-type interval, as Wilson's for a proportion: the variance is taken at the candidate
+    theta, not at the estimate, so the interval stays inside [0, 1] without clipping and does not
+    shrink to a point at auc = 1 (10 anomalies vs 8 normals, all separated: about 0.78-1). It needs
+    only the AUROC and the class sizes, so it exists whenever both classes do.
+
+    References
+    ----------
+    Newcombe, "Confidence intervals for an effect size measure based on the Mann-Whitney statistic.
+    Part 2: Asymptotic methods and evaluation", Statistics in Medicine 25:559-573, 2006 (method 5,
+    the one the paper recommends).
+    Hanley & McNeil, Radiology 143:29-36, 1982 (the variance it builds on).
+    """
+    a = _check_unit("auc", auc)
+    if n_pos < 1 or n_neg < 1:
+        raise ValueError(f"n_pos and n_neg must be >= 1, got: {n_pos} and {n_neg}")
+    if not 0.0 < level < 1.0:
+        raise ValueError(f"level must be in (0, 1), got: {level}")
+    z2 = norm.ppf(0.5 + level / 2.0) ** 2
+    gap = lambda theta: (a - theta) ** 2 - z2 * newcombe_variance(theta, n_pos, n_neg)  # noqa: E731
+    # gap < 0 at theta = a, or just inside [0, 1] when a is 0 or 1 (the variance vanishes there
+    # linearly, (a - theta)^2 quadratically); gap = (a - theta)^2 > 0 at the far end: a root between
+    inside = min(max(a, _EDGE), 1.0 - _EDGE)
+    low = 0.0 if a == 0.0 else brentq(gap, 0.0, inside, xtol=1e-12)
+    high = 1.0 if a == 1.0 else brentq(gap, inside, 1.0, xtol=1e-12)
+    return float(low), float(high)
 
 
 def hanley_mcneil_se(auc: float, n_pos: int, n_neg: int) -> float:
@@ -327,21 +376,29 @@ def evaluation_summary(labels, scores, cutoff: float, kinds: Sequence[str] | Non
     `cutoff` is the operating point under test ("score > cutoff" is flagged; inf flags nothing).
     `kinds` names each sample's anomaly kind (ignored for normals); per_kind_auroc compares the
     anomalies of one kind with all normals. Raises ValueError without normals or anomalies.
+
+    auroc_ci95 is newcombe_ci (always defined once both classes are present; auroc_ci_method names
+    it). small_sample is true when either class has fewer than SMALL_SAMPLE_MIN (20) samples, a
+    common rule of thumb: the AUROC then moves a lot with a single image and the interval is wide.
     """
     y, s = _check(labels, scores)
     cutoff, beta = _check_cutoff(cutoff), _check_beta(beta)
-    low, high = _delong_ci(y, s, 0.95)
+    auc = _auroc(y, s)
+    n_normal, n_anomalous = int(np.sum(y == 0)), int(np.sum(y == 1))
+    low, high = newcombe_ci(auc, n_anomalous, n_normal, 0.95)
     c = _confusion(y, s, cutoff)
     best = _best_f_beta(y, s, beta)
     return {
-        "auroc": json_number(_auroc(y, s)),
+        "auroc": json_number(auc),
         "auroc_ci95": [json_number(low), json_number(high)],
         "auroc_ci_method": CI_METHOD,
+        "small_sample": min(n_normal, n_anomalous) < SMALL_SAMPLE_MIN,
+        "small_sample_min": SMALL_SAMPLE_MIN,
         "average_precision": json_number(_average_precision(y, s)),
         "tpr_at_fpr": {str(r): json_number(_tpr_at_fpr(y, s, r)) for r in _TPR_AT_FPR_RATES},
         "fpr_at_tpr95": json_number(_fpr_at_tpr(y, s, 0.95)),
-        "n_normal": int(np.sum(y == 0)),
-        "n_anomalous": int(np.sum(y == 1)),
+        "n_normal": n_normal,
+        "n_anomalous": n_anomalous,
         "per_kind_auroc": _per_kind_auroc(y, s, kinds),
         "at_cutoff": {"cutoff": json_number(cutoff), "precision": json_number(c.precision),
                       "recall": json_number(c.recall), "fpr": json_number(c.fpr),
@@ -350,6 +407,6 @@ def evaluation_summary(labels, scores, cutoff: float, kinds: Sequence[str] | Non
     }
 
 
-__all__ = ["CI_METHOD", "Confusion", "auroc", "average_precision", "best_f_beta", "confusion_at", "delong_ci",
-           "delong_variance", "evaluation_summary", "fpr_at_tpr", "hanley_mcneil_se", "precision_recall_curve",
-           "roc_curve", "tpr_at_fpr"]
+__all__ = ["CI_METHOD", "SMALL_SAMPLE_MIN", "Confusion", "auroc", "average_precision", "best_f_beta",
+           "confusion_at", "delong_ci", "delong_variance", "evaluation_summary", "fpr_at_tpr", "hanley_mcneil_se",
+           "newcombe_ci", "newcombe_variance", "precision_recall_curve", "roc_curve", "tpr_at_fpr"]

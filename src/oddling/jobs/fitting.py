@@ -16,7 +16,7 @@ from oddling.detectors.conformal import ConformalThreshold
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, refuse_existing, warn_if_few_calibration
-from oddling.reporting.results import json_number
+from oddling.numbers import json_number
 
 DEFAULT_REPRESENTATION = "efficientnet-lite0"
 RULE = "flagged when score > cutoff, i.e. conformal p-value <= target_fpr"

@@ -139,12 +139,24 @@ def bank_info(bank_path: str | os.PathLike) -> dict:
         "supported_rates": supported_rate_text(n_cal)}
 
 
-def audit(bank: Bank | str | os.PathLike) -> dict:
-    """Findings about the reference set itself: outliers, duplicates, near duplicates, health."""
-    from oddling.evaluation.reference_audit import NEAR_DUPLICATE_COSINE, audit_bank
+def audit(bank: Bank | str | os.PathLike, *, near_duplicate_factor: float | None = None,
+          max_hash_bits: int | None = None) -> dict:
+    """Findings about the reference set itself: outliers, duplicates, near duplicates, health.
 
+    Near duplicates are judged against the bank's own neighbour distances (see
+    `oddling.evaluation.reference_audit`): `near_duplicate_factor` of the median nearest-neighbour
+    cosine distance, or at most `max_hash_bits` differing bits of a perceptual hash.
+    """
+    from oddling.evaluation.reference_audit import MAX_HASH_BITS, NEAR_DUPLICATE_FACTOR, audit_bank
+
+    factor = NEAR_DUPLICATE_FACTOR if near_duplicate_factor is None else near_duplicate_factor
+    bits = MAX_HASH_BITS if max_hash_bits is None else max_hash_bits
+    if not 0.0 < factor < 1.0:
+        raise OddlingError(f"near_duplicate_factor must be in (0, 1), got: {factor}")
+    if not 0 <= bits <= 64:
+        raise OddlingError(f"max_hash_bits must be in [0, 64], got: {bits}")
     bank = as_bank(bank)
     require_features(bank, "audit")
-    findings = audit_bank(bank)
+    findings = audit_bank(bank, near_duplicate_factor=factor, max_hash_bits=bits)
     return {"bank": str(bank.path) if bank.path else None, "n_references": bank.size,
-            "near_duplicate_cosine": NEAR_DUPLICATE_COSINE, "findings": [f.to_dict() for f in findings]}
+            "near_duplicate_factor": factor, "max_hash_bits": bits, "findings": [f.to_dict() for f in findings]}

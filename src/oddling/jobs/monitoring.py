@@ -13,7 +13,7 @@ from oddling.errors import OddlingError
 from oddling.jobs.common import RunOptions, embed_folder, folder, load_bank_representation
 from oddling.jobs.maintenance import require_features
 from oddling.jobs.scoring import as_bank, score_features
-from oddling.reporting.results import json_number
+from oddling.numbers import json_number
 
 
 def drift(

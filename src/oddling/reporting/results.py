@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from oddling.embedding.runner import OK
+from oddling.numbers import json_number  # noqa: F401  (re-exported: its home is oddling.numbers)
 
 SCORE_COLUMNS = ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "health", "status"]
 
@@ -75,13 +76,6 @@ def write_text(path: Path, text: str, force: bool = False) -> Path:
     tmp.write_text(text, encoding="utf-8")
     tmp.replace(path)
     return path
-
-
-def json_number(value: float | None, digits: int = 6) -> float | None:
-    """Rounded float for JSON (stable bytes across runs), None for missing/inf/NaN."""
-    if value is None or not math.isfinite(value):
-        return None
-    return round(float(value), digits)
 
 
 def count_ok(rows: list[ScoreRow]) -> int:
