@@ -160,9 +160,12 @@ def test_the_default_factor_keeps_a_margin_below_the_closest_distinct_pair(sampl
 
 
 def _bank(root, names, embedded) -> Bank:
-    return Bank(backbone={"id": "efficientnet-lite0"}, mode="global", k=1,
+    from oddling.detectors.knn import KNNDetector
+
+    return Bank(representation={"kind": "embedding", "id": "efficientnet-lite0"},
+                detector=KNNDetector(k=1).load_state({}, {"references": embedded.embeddings}),
                 references=[{"path": r.path, "sha256": r.sha256} for r in embedded.ok_records],
-                embeddings=embedded.embeddings, calibration_scores=np.zeros(len(names)), calibration={},
+                features=embedded.embeddings, calibration_scores=np.zeros(len(names)), calibration={},
                 reference_root=str(root), tool_version="test", created="test")
 
 
