@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
 from pathlib import Path
 from typing import Iterable
 
@@ -20,6 +21,52 @@ BANK_MARKER = "bank.json"          # a folder holding this file is an oddling ba
 _FORMATS = ("JPEG", "PNG", "BMP", "TIFF", "WEBP", "GIF")
 _DRAFT_FORMATS = frozenset({"JPEG", "MPO"})
 _MESSAGE_CHARS = 120
+
+
+# --- paths as text ---------------------------------------------------------------------------------
+# Inside oddling a path is a str as Python gives it: bytes that are not valid UTF-8 arrive as lone
+# surrogates U+DC80..U+DCFF (PEP 383 "surrogateescape"), so the str still opens the real file. No
+# writer can encode those, so every path written as text (CSV, JSON, the page) goes through
+# display_path: each undecodable byte becomes \xNN (two lower-case hex digits), a literal
+# backslash is doubled, and any other lone surrogate (possible on Windows) becomes \uDXXX.
+# Everything else, valid non-ASCII included, is left as it is. path_from_display undoes it.
+_DISPLAY_SPECIAL = re.compile("[\\\\\ud800-\udfff]")   # a backslash or any lone surrogate
+_DISPLAY_ESCAPE = re.compile(r"\\(\\|x[89a-f][0-9a-f]|ud[89a-f][0-9a-f]{2})", re.IGNORECASE)
+
+
+def _display_char(match: re.Match) -> str:
+    code = ord(match.group())
+    if code == 0x5C:
+        return "\\\\"
+    if 0xDC80 <= code <= 0xDCFF:
+        return f"\\x{code - 0xDC00:02x}"
+    return f"\\u{code:04x}"
+
+
+def _real_char(match: re.Match) -> str:
+    escape = match.group(1)
+    if escape == "\\":
+        return "\\"
+    if escape[0] in "xX":
+        return chr(0xDC00 + int(escape[1:], 16))
+    return chr(int(escape[1:], 16))
+
+
+def display_path(path: str) -> str:
+    """`path` as text any writer can encode (valid UTF-8), reversibly: see path_from_display.
+
+    Undecodable bytes (surrogateescape) become \\xNN, a backslash becomes two backslashes:
+    os.fsdecode(b"x\\xff.png") -> "x\\\\xff.png" (shown as x\\xff.png), "a\\b" -> "a\\\\b".
+    """
+    return _DISPLAY_SPECIAL.sub(_display_char, path)
+
+
+def path_from_display(text: str) -> str:
+    """The inverse of display_path: the str that opens the real file (surrogateescape).
+
+    A backslash not followed by a backslash, xNN (NN from 80 to ff) or uDXXX is kept as it is.
+    """
+    return _DISPLAY_ESCAPE.sub(_real_char, text)
 
 
 class IntakeError(Exception):

@@ -7,6 +7,7 @@ import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from oddling.data.intake import display_path
 from oddling.embedding.runner import OK
 
 SCORE_COLUMNS = ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "health", "status"]
@@ -41,6 +42,11 @@ def _num(value: float | None, digits: int = 6) -> str:
     return f"{value:.{digits}f}"
 
 
+def _text(value: str) -> str:
+    """A text cell: paths (and any other text) with undecodable bytes as \\xNN (intake.display_path)."""
+    return display_path(value)
+
+
 def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
     out = io.StringIO()
     columns = SCORE_COLUMNS + (["label", "kind"] if with_labels else [])
@@ -48,17 +54,17 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
     writer.writerow(columns)
     for r in rows:
         line = [
-            r.path,
+            _text(r.path),
             _num(r.score),
             _num(r.p_value),
             "" if r.flagged is None else ("true" if r.flagged else "false"),
-            r.nearest[0] if r.nearest else "",
+            _text(r.nearest[0]) if r.nearest else "",
             _num(r.nearest_distances[0]) if r.nearest_distances else "",
-            r.health,
-            r.status,
+            _text(r.health),
+            _text(r.status),
         ]
         if with_labels:
-            line += ["" if r.label is None else ("anomalous" if r.label else "normal"), r.kind or ""]
+            line += ["" if r.label is None else ("anomalous" if r.label else "normal"), _text(r.kind or "")]
         writer.writerow(line)
     return out.getvalue()
 

@@ -1,0 +1,116 @@
+"""Hostile inputs: file names, file types and images made to break the writers or the decoder.
+
+Every file still gets exactly one row with a status; nothing raises, nothing hangs, and what is
+written can be read back to the real file.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import os
+import sys
+
+import html5lib
+import numpy as np
+import pytest
+from PIL import Image
+
+from oddling.bank.store import Bank
+from oddling.data.intake import discover, display_path, path_from_display
+from oddling.reporting.results import ScoreRow, rows_to_csv, write_text
+
+POSIX_BYTES_NAMES = os.name == "posix" and sys.getfilesystemencoding().lower() in ("utf-8", "utf8")
+
+
+def _png(path, colour=(200, 40, 40), size=(48, 32)):
+    path.parent.mkdir(parents=True, exist_ok=True)
+    Image.new("RGB", size, colour).save(path)
+    return path
+
+
+def _bank(ref_root, names) -> Bank:
+    """A small hand-made bank (no network): enough for write_report."""
+    for i, name in enumerate(names):
+        _png(ref_root / name, (40 * i, 120, 200))
+    n = len(names)
+    return Bank(
+        backbone={"id": "efficientnet-lite0", "weights_sha256": "ab" * 32, "preprocessing": {"crop": 224},
+                  "embedding_dim": 4},
+        mode="global", k=1,
+        references=[{"path": name, "sha256": f"{i:064d}"} for i, name in enumerate(names)],
+        embeddings=np.eye(n, 4, dtype=np.float32),
+        calibration_scores=np.linspace(0.1, 0.4, 60),
+        calibration={"method": "leave-one-out", "n": 60, "target_fpr": 0.05, "cutoff": 0.37},
+        reference_root=str(ref_root), tool_version="0.1.0", created="2026-01-01T00:00:00+00:00",
+        path=ref_root.parent / "parts.bank",
+    )
+
+
+def _report(tmp_path, rows, root, ref_names):
+    from oddling.api import ScoreResult
+    from oddling.reporting.page import write_report
+
+    bank = _bank(tmp_path / "refs", ref_names)
+    out = write_report(tmp_path / "report.html", ScoreResult(rows, bank, 0.05, 0.37, root))
+    parser = html5lib.HTMLParser(tree=html5lib.getTreeBuilder("etree"), namespaceHTMLElements=False)
+    doc = parser.parse(out.read_text(encoding="utf-8"))
+    assert parser.errors == []
+    return doc
+
+
+def _cards(doc):
+    return [li for li in doc.iter("li") if "card" in li.get("class", "").split()]
+
+
+def _csv_rows(text: str) -> list[dict]:
+    return list(csv.DictReader(io.StringIO(text, newline="")))
+
+
+# --- 1. file names that are not valid UTF-8 -----------------------------------------------------
+
+# Raw POSIX names; os.fsdecode (PEP 383 "surrogateescape") is the outside reference for what
+# Python hands us, os.fsencode for getting the real bytes back.
+RAW_NAMES = [b"plain.png", b"x\xff.png", b"\xe9t\xe9.png", b"caf\xc3\xa9.png", b"a\\b.png", b"x\\xff.png",
+             b"\\\\x\xff\\", b"\xc3\x28.png"]
+
+
+@pytest.mark.parametrize("raw", RAW_NAMES, ids=[repr(r) for r in RAW_NAMES])
+def test_display_path_is_valid_utf8_and_reversible(raw):
+    name = os.fsdecode(raw) if POSIX_BYTES_NAMES else raw.decode("utf-8", "surrogateescape")
+    shown = display_path(name)
+    shown.encode("utf-8")                       # strict: no surrogate reaches a writer
+    assert path_from_display(shown) == name
+    assert path_from_display(shown).encode("utf-8", "surrogateescape") == raw
+
+
+def test_display_path_escapes_bytes_as_backslash_x_and_doubles_backslashes():
+    assert display_path("x\udcff.png") == "x\\xff.png"
+    assert display_path("x\\xff.png") == "x\\\\xff.png"      # a literal backslash-x-ff is told apart
+    assert display_path("caf\u00e9/d.png") == "caf\u00e9/d.png"   # valid UTF-8 is left as it is
+
+
+@pytest.mark.skipif(not POSIX_BYTES_NAMES, reason="needs a POSIX file system with byte file names")
+def test_non_utf8_file_name_is_written_to_csv_and_page_and_leads_back_to_the_file(tmp_path):
+    root = tmp_path / "batch"
+    root.mkdir()
+    try:
+        _png(root / os.fsdecode(b"x\xff.png"))
+    except OSError:
+        pytest.skip("this file system refuses non-UTF-8 names")
+    (tmp_path / "refs").mkdir()
+    _png(tmp_path / "refs" / os.fsdecode(b"r\xfe.png"))
+    [found] = discover(root)
+    rel = found.relative_to(root).as_posix()
+    rows = [ScoreRow(path=rel, status="ok", sha256="0" * 64, score=0.5, p_value=0.1, flagged=True,
+                     nearest=[os.fsdecode(b"r\xfe.png")], nearest_distances=[0.4], health="ok")]
+
+    out = write_text(tmp_path / "scores.csv", rows_to_csv(rows))       # raised UnicodeEncodeError before
+    [row] = _csv_rows(out.read_text(encoding="utf-8"))
+    assert row["path"] == "x\\xff.png"
+    assert (root / path_from_display(row["path"])).is_file()
+    assert (tmp_path / "refs" / path_from_display(row["nearest"])).is_file()
+
+    doc = _report(tmp_path, rows, root, [os.fsdecode(b"r\xfe.png")])
+    [card] = _cards(doc)
+    assert card.get("data-path") == "x\\xff.png"
+    assert (root / path_from_display(card.get("data-path"))).is_file()
