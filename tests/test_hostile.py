@@ -114,3 +114,35 @@ def test_non_utf8_file_name_is_written_to_csv_and_page_and_leads_back_to_the_fil
     [card] = _cards(doc)
     assert card.get("data-path") == "x\\xff.png"
     assert (root / path_from_display(card.get("data-path"))).is_file()
+
+
+# --- 4. line breaks in file names -----------------------------------------------------------------
+
+LINE_BREAK_NAMES = ["cr\rname.png", "lf\nname.png", "crlf\r\nname.png", 'quote"and,comma.png']
+
+
+@pytest.mark.skipif(os.name != "posix", reason="needs a file system that allows line breaks in names")
+def test_line_breaks_in_file_names_stay_inside_one_quoted_csv_field(tmp_path):
+    for name in LINE_BREAK_NAMES:
+        _png(tmp_path / name)
+    found = [p.relative_to(tmp_path).as_posix() for p in discover(tmp_path)]
+    assert sorted(found) == sorted(LINE_BREAK_NAMES)
+    rows = [ScoreRow(path=p, status="unreadable: x", nearest=[p]) for p in found]
+    text = rows_to_csv(rows)
+    # Outside reference: Python's csv module (RFC 4180 quoting) reads one record per file.
+    records = list(csv.reader(io.StringIO(text, newline="")))
+    assert records[0][0] == "path"
+    assert [r[0] for r in records[1:]] == found
+    assert [r[4] for r in records[1:]] == found
+    assert all(len(r) == len(records[0]) for r in records)
+
+
+def test_csv_without_carriage_returns_is_byte_identical_to_csv_writer():
+    rows = [ScoreRow(path='a,"b".png', status="ok", score=-0.25, p_value=0.5, flagged=False,
+                     nearest=["lf\nref.png"], nearest_distances=[0.1], health="ok"),
+            ScoreRow(path="plain.png", status="skipped: not an image file type (.txt)")]
+    text = rows_to_csv(rows, with_labels=True)
+    records = list(csv.reader(io.StringIO(text, newline="")))
+    again = io.StringIO()
+    csv.writer(again, lineterminator="\n").writerows(records)   # what the format was before
+    assert text == again.getvalue()

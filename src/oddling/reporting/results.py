@@ -1,8 +1,6 @@
 """Per-file results and their files: the scores CSV (sorted, every input accounted for) and the JSON summary."""
 from __future__ import annotations
 
-import csv
-import io
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -47,11 +45,21 @@ def _text(value: str) -> str:
     return display_path(value)
 
 
+def _field(cell: str) -> str:
+    """RFC 4180 quoting: a cell holding a comma, a double quote, CR or LF is quoted, quotes doubled.
+
+    csv.writer's QUOTE_MINIMAL quotes only the characters of its line terminator ("\\n" here), so
+    a lone "\\r" in a file name went out unquoted and split the row for every reader.
+    """
+    if any(c in cell for c in ',"\r\n'):
+        return '"' + cell.replace('"', '""') + '"'
+    return cell
+
+
 def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
-    out = io.StringIO()
+    """The scores CSV: one line per row ending in "\\n", cells quoted as _field says."""
     columns = SCORE_COLUMNS + (["label", "kind"] if with_labels else [])
-    writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(columns)
+    lines = [columns]
     for r in rows:
         line = [
             _text(r.path),
@@ -65,8 +73,8 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
         ]
         if with_labels:
             line += ["" if r.label is None else ("anomalous" if r.label else "normal"), _text(r.kind or "")]
-        writer.writerow(line)
-    return out.getvalue()
+        lines.append(line)
+    return "".join(",".join(_field(cell) for cell in line) + "\n" for line in lines)
 
 
 def write_text(path: Path, text: str, force: bool = False) -> Path:
