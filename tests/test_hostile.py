@@ -7,7 +7,10 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import os
+import shutil
+import subprocess
 import sys
 
 import html5lib
@@ -17,7 +20,7 @@ from PIL import Image
 
 from oddling.bank.store import Bank
 from oddling.data.intake import discover, display_path, path_from_display
-from oddling.reporting.results import ScoreRow, rows_to_csv, write_text
+from oddling.reporting.results import ScoreRow, path_from_cell, rows_to_csv, write_text
 
 POSIX_BYTES_NAMES = os.name == "posix" and sys.getfilesystemencoding().lower() in ("utf-8", "utf8")
 
@@ -146,3 +149,47 @@ def test_csv_without_carriage_returns_is_byte_identical_to_csv_writer():
     again = io.StringIO()
     csv.writer(again, lineterminator="\n").writerows(records)   # what the format was before
     assert text == again.getvalue()
+
+
+# --- 5. spreadsheet formula injection -------------------------------------------------------------
+
+# OWASP "CSV Injection" (https://owasp.org/www-community/attacks/CSV_Injection): cells starting
+# with = + - @ TAB or CR are run as formulas by spreadsheets; they must start with a single quote.
+FORMULA_NAMES = ['=HYPERLINK("http:x","y").png', "+1.png", "-2.png", "@SUM(A1).png", "\tx.png", "\rx.png",
+                 "'=already-quoted.png", "''+two.png", "'plain-quote.png", "a=b.png", "x\udcff=.png"]
+TRIGGERS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def _neutralised(cell: str) -> bool:
+    return not cell.startswith(TRIGGERS)
+
+
+def test_formula_cells_in_the_scores_csv_start_with_a_quote_and_read_back(tmp_path):
+    rows = [ScoreRow(path=name, status="-status", score=0.25, p_value=0.5, flagged=False, nearest=["=" + name],
+                     nearest_distances=[0.2], health="+health", label=1, kind="@kind") for name in FORMULA_NAMES]
+    rows.append(ScoreRow(path="neg.png", status="ok", score=-0.25, p_value=-0.5))   # number cells: not text
+    records = _csv_rows(rows_to_csv(rows, with_labels=True))
+    for name, record in zip(FORMULA_NAMES, records):
+        for column in ("path", "nearest", "health", "status", "kind"):
+            assert _neutralised(record[column]), (column, record[column])
+        assert path_from_cell(record["path"]) == name
+        assert path_from_cell(record["nearest"]) == "=" + name
+        assert record["status"] == "'-status" and record["health"] == "'+health" and record["kind"] == "'@kind"
+    assert records[0]["path"] == "'=HYPERLINK(\"http:x\",\"y\").png"
+    assert records[-1]["score"] == "-0.250000" and records[-1]["p_value"] == "-0.500000"
+
+
+@pytest.mark.skipif(shutil.which("node") is None, reason="needs Node.js to run the page's export script")
+def test_formula_cells_in_the_page_decisions_export_start_with_a_quote_and_read_back():
+    from oddling.reporting.page import CSV_CELLS_JS
+
+    # The page's own export functions, run by Node.js on paths as data-path holds them.
+    shown = [display_path(name) for name in FORMULA_NAMES]
+    script = CSV_CELLS_JS + (f"\nvar names = {json.dumps(shown)};\n"
+                             "process.stdout.write(names.map(function (n) { return csvField(csvText(n)) + ',normal'; })"
+                             ".join('\\n') + '\\n');")
+    exported = subprocess.run(["node", "-e", script], capture_output=True, check=True).stdout.decode("utf-8")
+    records = list(csv.reader(io.StringIO(exported, newline="")))
+    assert [r[1] for r in records] == ["normal"] * len(FORMULA_NAMES)
+    assert all(_neutralised(r[0]) for r in records)
+    assert [path_from_cell(r[0]) for r in records] == FORMULA_NAMES

@@ -569,6 +569,19 @@ main,.masthead,footer{padding:0 10px}h1{font-size:1.3rem}
 }
 """
 
+# The decisions export's cell functions (also run on their own by tests/test_hostile.py).
+# csvText is results.csv_text for a path already in display form (data-path holds
+# display_path); results.path_from_cell reads an exported path back.
+CSV_CELLS_JS = r"""
+  // OWASP "CSV Injection": a cell starting with = + - @ TAB or CR (after any single quotes) gets
+  // one more leading single quote, so a spreadsheet shows it as text instead of running it.
+  var FORMULA_START = /^'*[=+\-@\t\r]/;
+  function csvText(text) { return FORMULA_START.test(text) ? "'" + text : text; }
+  function csvField(text) {
+    return /[",\r\n]|^\s|\s$/.test(text) ? '"' + text.replace(/"/g, '""') + '"' : text;
+  }
+"""
+
 _JS = r"""
 (function () {
   "use strict";
@@ -612,14 +625,12 @@ _JS = r"""
     apply();
   });
 
-  function csvField(text) {
-    return /[",\r\n]|^\s|\s$/.test(text) ? '"' + text.replace(/"/g, '""') + '"' : text;
-  }
+/*CSV_CELLS*/
   function decisionsCsv() {
     var lines = ["path,decision"];
     cards.forEach(function (card) {   // in rank order, as on the page
       var path = card.getAttribute("data-path");
-      if (marks[path]) { lines.push(csvField(path) + "," + marks[path]); }
+      if (marks[path]) { lines.push(csvField(csvText(path)) + "," + marks[path]); }
     });
     return lines.join("\n") + "\n";
   }
@@ -682,6 +693,6 @@ _JS = r"""
   rankOrder.forEach(showMark);
   apply();
 }());
-"""
+""".replace("/*CSV_CELLS*/", CSV_CELLS_JS.lstrip("\n"))
 
 __all__ = ["CAUTION", "plot_score_histogram", "plots_folder", "run_id", "thumbnail_uri", "write_report"]

@@ -2,10 +2,11 @@
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from oddling.data.intake import display_path
+from oddling.data.intake import display_path, path_from_display
 from oddling.embedding.runner import OK
 
 SCORE_COLUMNS = ["path", "score", "p_value", "flagged", "nearest", "nearest_distance", "health", "status"]
@@ -40,9 +41,26 @@ def _num(value: float | None, digits: int = 6) -> str:
     return f"{value:.{digits}f}"
 
 
-def _text(value: str) -> str:
-    """A text cell: paths (and any other text) with undecodable bytes as \\xNN (intake.display_path)."""
-    return display_path(value)
+# OWASP "CSV Injection": a spreadsheet runs a cell starting with = + - @ TAB or CR as a formula.
+# Such a text cell gets one leading single quote. Cells that already start with single quotes
+# followed by one of those get one more, so the rule stays reversible (see path_from_cell).
+FORMULA_START = re.compile("^'*[=+\\-@\t\r]")
+_QUOTED_FORMULA = re.compile("^'+[=+\\-@\t\r]")
+
+
+def csv_text(value: str) -> str:
+    """A text cell of a CSV (path, nearest, health, status, kind; never a number): the path as
+    intake.display_path writes it, then neutralised against formula injection."""
+    text = display_path(value)
+    return "'" + text if FORMULA_START.match(text) else text
+
+
+def path_from_cell(cell: str) -> str:
+    """The inverse of csv_text: the str that opens the real file, from a path cell of the scores
+    CSV or the page's decisions export (one leading ' dropped, then intake.path_from_display)."""
+    if _QUOTED_FORMULA.match(cell):
+        cell = cell[1:]
+    return path_from_display(cell)
 
 
 def _field(cell: str) -> str:
@@ -62,17 +80,17 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
     lines = [columns]
     for r in rows:
         line = [
-            _text(r.path),
+            csv_text(r.path),
             _num(r.score),
             _num(r.p_value),
             "" if r.flagged is None else ("true" if r.flagged else "false"),
-            _text(r.nearest[0]) if r.nearest else "",
+            csv_text(r.nearest[0]) if r.nearest else "",
             _num(r.nearest_distances[0]) if r.nearest_distances else "",
-            _text(r.health),
-            _text(r.status),
+            csv_text(r.health),
+            csv_text(r.status),
         ]
         if with_labels:
-            line += ["" if r.label is None else ("anomalous" if r.label else "normal"), _text(r.kind or "")]
+            line += ["" if r.label is None else ("anomalous" if r.label else "normal"), csv_text(r.kind or "")]
         lines.append(line)
     return "".join(",".join(_field(cell) for cell in line) + "\n" for line in lines)
 
