@@ -193,3 +193,50 @@ def test_formula_cells_in_the_page_decisions_export_start_with_a_quote_and_read_
     assert [r[1] for r in records] == ["normal"] * len(FORMULA_NAMES)
     assert all(_neutralised(r[0]) for r in records)
     assert [path_from_cell(r[0]) for r in records] == FORMULA_NAMES
+
+
+# --- 2. extreme aspect ratios -----------------------------------------------------------------------
+
+def _status(path, **kwargs) -> str:
+    from oddling.data.intake import IntakeError, load_rgb
+
+    with pytest.raises(IntakeError) as caught:
+        load_rgb(path, **kwargs)
+    return caught.value.status
+
+
+def _refuse_decoding(monkeypatch):
+    """Any pixel decoding now fails loudly: a guard that works from the header alone is unaffected."""
+    from PIL import ImageFile
+
+    def load(self):
+        raise AssertionError("pixels were decoded")
+    monkeypatch.setattr(ImageFile.ImageFile, "load", load)
+
+
+def test_a_tiny_file_of_100000x1_pixels_is_refused_before_decoding(tmp_path, monkeypatch):
+    path = tmp_path / "line.png"
+    Image.new("L", (100_000, 1)).save(path, optimize=True)
+    assert path.stat().st_size < 1000        # a few hundred bytes that would need ~26 GB once resized
+    _refuse_decoding(monkeypatch)
+    assert _status(path, min_side=256) == "skipped: extreme aspect ratio 100000x1 (limit 50:1)"
+    assert _status(path) == "skipped: extreme aspect ratio 100000x1 (limit 50:1)"
+
+
+def test_aspect_ratio_limit_is_50_to_1_either_way(tmp_path):
+    from oddling.data.intake import load_rgb
+
+    for size in [(50, 1), (1, 50)]:
+        Image.new("RGB", size).save(tmp_path / "ok.png")
+        assert load_rgb(tmp_path / "ok.png").size == size
+    Image.new("RGB", (1, 51)).save(tmp_path / "tall.png")
+    assert _status(tmp_path / "tall.png") == "skipped: extreme aspect ratio 1x51 (limit 50:1)"
+
+
+def test_an_image_whose_resize_would_exceed_max_pixels_is_refused_before_decoding(tmp_path, monkeypatch):
+    path = tmp_path / "small.png"
+    Image.new("RGB", (100, 50)).save(path)
+    _refuse_decoding(monkeypatch)
+    # Shorter side 50 -> 2000: 4000 x 2000 = 8 000 000 pixels after the resize.
+    assert _status(path, min_side=2000, max_pixels=5_000_000) == (
+        "skipped: image too large once resized (100x50 to 4000x2000 pixels, limit 5000000)")

@@ -12,6 +12,7 @@ from PIL import Image, ImageOps, UnidentifiedImageError
 
 IMAGE_SUFFIXES = frozenset({".jpg", ".jpeg", ".png", ".bmp", ".tif", ".tiff", ".webp", ".gif"})
 MAX_PIXELS_DEFAULT = 89_478_485     # decompression-bomb guard: Pillow's own default limit (~9.5k x 9.5k)
+MAX_ASPECT_RATIO = 50               # longer side / shorter side; beyond it the resize to min_side explodes
 ORIGINAL_SIZE = "oddling_original_size"   # key in image.info: (width, height) of the file itself
 BANK_MARKER = "bank.json"          # a folder holding this file is an oddling bank, never input
 
@@ -181,11 +182,27 @@ def to_rgb(image: Image.Image) -> Image.Image:
     return image.convert("RGB")
 
 
+def _check_shape(width: int, height: int, min_side: int | None, max_pixels: int) -> None:
+    """Refuse, from the header, what the resize to `min_side` would blow up: a 375-byte PNG of
+    100000 x 1 pixels passes the pixel-count guard but is 25 600 000 x 256 once resized."""
+    long_side, short_side = max(width, height), min(width, height)
+    if long_side > MAX_ASPECT_RATIO * short_side:
+        raise IntakeError(f"skipped: extreme aspect ratio {width}x{height} (limit {MAX_ASPECT_RATIO}:1)")
+    if min_side:
+        # The shorter side becomes min_side, the longer one scales with it (as preprocess does).
+        resized_long = max(1, int(long_side * (min_side / short_side)))
+        new_w, new_h = (resized_long, min_side) if width >= height else (min_side, resized_long)
+        if new_w * new_h > max_pixels:
+            raise IntakeError(f"skipped: image too large once resized ({width}x{height} to {new_w}x{new_h} "
+                              f"pixels, limit {max_pixels})")
+
+
 def _decode(path: Path, min_side: int | None, max_pixels: int) -> Image.Image:
     with Image.open(path, formats=_FORMATS) as opened:
         width, height = opened.size
         if width * height > max_pixels:   # from the header, before any pixel memory is allocated
             raise IntakeError(f"unreadable: image too large ({width} x {height} pixels, limit {max_pixels})")
+        _check_shape(width, height, min_side, max_pixels)
         if min_side and opened.format in _DRAFT_FORMATS:
             # Decode at the smallest DCT scale (1/2, 1/4, 1/8) keeping both sides >= min_side.
             # A square request holds whichever way the EXIF orientation later turns the image.
@@ -213,7 +230,8 @@ def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXE
     With `min_side`, JPEGs decode at reduced size (Pillow's draft mode) with both sides still
     >= min_side: a 12-MP photo decodes several times faster when the network wants 256 px.
     Truncated files fail (ImageFile.LOAD_TRUNCATED_IMAGES is left alone). The pixel count is
-    checked against `max_pixels` from the header, before any pixel is decoded.
+    checked against `max_pixels` from the header, before any pixel is decoded; so are the aspect
+    ratio (at most MAX_ASPECT_RATIO:1) and, with `min_side`, the pixel count after the resize.
     """
     path = Path(path)
     suffix = path.suffix.lower()
