@@ -240,3 +240,69 @@ def test_an_image_whose_resize_would_exceed_max_pixels_is_refused_before_decodin
     # Shorter side 50 -> 2000: 4000 x 2000 = 8 000 000 pixels after the resize.
     assert _status(path, min_side=2000, max_pixels=5_000_000) == (
         "skipped: image too large once resized (100x50 to 4000x2000 pixels, limit 5000000)")
+
+
+# --- 3. what the walk meets besides regular files -------------------------------------------------
+
+def _stub_backbone():
+    from types import SimpleNamespace
+
+    from oddling.data.preprocess import Preprocessing
+
+    prep = Preprocessing(resize_shorter=16, crop=16, interpolation="bilinear", mean=(0.0, 0.0, 0.0),
+                         std=(1.0, 1.0, 1.0))
+
+    def embed(batch):   # a stand-in network: one unit vector per image
+        flat = batch.reshape(len(batch), -1)[:, :4].astype(np.float32) + 1.0
+        return flat / np.linalg.norm(flat, axis=1, keepdims=True)
+    return SimpleNamespace(preprocessing=prep, embed=embed, embedding_dim=4)
+
+
+def _statuses(root, paths=None, cache=None) -> dict[str, str]:
+    from oddling.embedding.runner import embed_files
+
+    paths = discover(root) if paths is None else paths
+    embedded = embed_files(root, paths, _stub_backbone(), progress=False, workers=1, cache=cache)
+    return {r.path: r.status for r in embedded.records}
+
+
+@pytest.mark.skipif(os.name != "posix" or not hasattr(os, "mkfifo"), reason="needs POSIX links, FIFOs and sockets")
+def test_every_entry_the_walk_meets_gets_a_row_and_nothing_blocks(tmp_path):
+    import socket
+
+    from oddling.data.intake import walk
+
+    root = tmp_path / "in"
+    _png(root / "real" / "a.png")
+    _png(tmp_path / "outside" / "o.png")
+    (root / "broken.png").symlink_to(root / "gone.png")
+    (root / "loop1.png").symlink_to(root / "loop2.png")
+    (root / "loop2.png").symlink_to(root / "loop1.png")
+    os.mkfifo(root / "pipe.png")                   # opening it to read would wait for a writer forever
+    (root / "null.png").symlink_to(os.devnull)     # a character device
+    server = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    server.bind(str(root / "sock.png"))
+    (root / "real" / "up").symlink_to(root, target_is_directory=True)            # a loop back to a parent
+    (root / "alias").symlink_to(root / "real", target_is_directory=True)         # a second way to a folder
+    (root / "ext").symlink_to(tmp_path / "outside", target_is_directory=True)    # followed, once
+    _png(root / ".hidden.png")
+    (root / "old.bank").mkdir()
+    (root / "old.bank" / "bank.json").write_text("{}")
+    try:
+        found = walk(root)
+        statuses = _statuses(root)
+    finally:
+        server.close()
+    assert statuses == {
+        "alias": "skipped: folder already searched (reached again through a symbolic link)",
+        "broken.png": "skipped: broken symbolic link",
+        "ext/o.png": "ok",
+        "loop1.png": "skipped: symbolic link loop",
+        "loop2.png": "skipped: symbolic link loop",
+        "null.png": "skipped: not a regular file (character device)",
+        "pipe.png": "skipped: not a regular file (FIFO)",
+        "real/a.png": "ok",
+        "real/up": "skipped: folder already searched (reached again through a symbolic link)",
+        "sock.png": "skipped: not a regular file (socket)",
+    }
+    assert found.left_out == {"hidden": 1, "bank folder": 1}   # the documented exclusions, counted

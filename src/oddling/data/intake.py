@@ -1,9 +1,12 @@
 """Find input files and decode them safely to RGB: every file gets a status, and no file crashes the run."""
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
 import re
+import stat
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Iterable
 
@@ -78,35 +81,131 @@ class IntakeError(Exception):
         self.status = status
 
 
-def discover(root: Path, exclude: Iterable[Path] = ()) -> list[Path]:
-    """Every regular, non-hidden file under `root`, sorted by POSIX relative path.
+@dataclass
+class Discovered:
+    """What `walk` found: `paths` (each gets a row) and `left_out`, the documented exclusions counted
+    by kind ("hidden", "excluded folder", "bank folder"; a folder counts once, not its contents)."""
 
-    Non-image files are included on purpose: they get a row saying why they were skipped.
-    Hidden files and folders, folders in `exclude` and bank folders (holding bank.json) are
-    left out; `root` itself is always searched. Symlinked folders are not followed (no loops).
+    paths: list[Path]
+    left_out: dict[str, int]
+
+
+def walk(root: Path, exclude: Iterable[Path] = ()) -> Discovered:
+    """Every entry under `root` that is not hidden, excluded or a bank folder, sorted by POSIX
+    relative path; check_file gives the status of those that are not (links to) regular files.
+
+    Regular files and links to them, broken links, FIFOs, sockets and devices are all listed
+    (nothing is opened here, so a FIFO cannot block). Symbolic links to folders are followed,
+    after the real folders, and each real folder is searched once: a link to a folder already
+    searched (a loop back to a parent, a second link) is listed itself instead of its contents.
+    A folder that cannot be listed is listed itself too. Left out, and counted in `left_out`:
+    hidden files and folders, folders in `exclude` (by resolved path) and bank folders (holding
+    bank.json); `root` itself is always searched.
     """
     root = Path(root)
     if not root.is_dir():
         raise IntakeError(f"{root} is not a folder")
     excluded = {Path(p).resolve() for p in exclude}
     found: list[Path] = []
-    for dirpath, dirnames, filenames in os.walk(root, followlinks=False):
-        here = Path(dirpath)
-        dirnames[:] = [
-            name for name in dirnames
-            if not name.startswith(".")
-            and (here / name).resolve() not in excluded
-            and not (here / name / BANK_MARKER).is_file()
-        ]
-        found.extend(here / name for name in filenames
-                     if not name.startswith(".") and (here / name).is_file())
-    return sorted(found, key=lambda p: p.relative_to(root).as_posix())
+    left_out: dict[str, int] = {}
+    searched: set[str] = {os.path.realpath(root)}
+    links: list[Path] = []     # symbolic links to folders: followed once the real folders are done
+
+    def leave_out(kind: str) -> None:
+        left_out[kind] = left_out.get(kind, 0) + 1
+
+    def unlistable(error: OSError) -> None:
+        if error.filename is None or Path(error.filename) == root:
+            raise IntakeError(f"{root} cannot be listed: {error.strerror or error}")
+        found.append(Path(error.filename))   # check_file says why
+
+    def search(top: Path) -> None:
+        for dirpath, dirnames, filenames in os.walk(top, onerror=unlistable, followlinks=False):
+            here = Path(dirpath)
+            keep = []
+            for name in dirnames:   # os.walk lists links to folders here, not among the files
+                folder = here / name
+                if name.startswith("."):
+                    leave_out("hidden")
+                elif folder.resolve() in excluded:
+                    leave_out("excluded folder")
+                elif (folder / BANK_MARKER).is_file():
+                    leave_out("bank folder")
+                elif folder.is_symlink():
+                    links.append(folder)
+                elif os.path.realpath(folder) in searched:   # a real folder met again below a link
+                    found.append(folder)
+                else:
+                    searched.add(os.path.realpath(folder))
+                    keep.append(name)
+            dirnames[:] = keep
+            for name in filenames:
+                if name.startswith("."):
+                    leave_out("hidden")
+                else:
+                    found.append(here / name)
+
+    search(root)
+    while links:
+        links.sort(key=lambda p: p.relative_to(root).as_posix())
+        link = links.pop(0)
+        real = os.path.realpath(link)
+        if real in searched:
+            found.append(link)   # a loop, or a folder already searched by another way
+        else:
+            searched.add(real)
+            search(link)
+    return Discovered(sorted(found, key=lambda p: p.relative_to(root).as_posix()), left_out)
+
+
+def discover(root: Path, exclude: Iterable[Path] = ()) -> list[Path]:
+    """walk(root, exclude).paths: every entry that gets a row, sorted by POSIX relative path."""
+    return walk(root, exclude).paths
+
+
+_FILE_KINDS = ((stat.S_ISFIFO, "FIFO"), (stat.S_ISSOCK, "socket"), (stat.S_ISCHR, "character device"),
+               (stat.S_ISBLK, "block device"))
+FOLDER_AGAIN = "skipped: folder already searched (reached again through a symbolic link)"
+
+
+def check_file(path: Path) -> int:
+    """The size of `path` if it is a regular file or a link to one; else IntakeError with the status.
+
+    Only stat()s, never opens: opening a FIFO waits for a writer forever.
+    """
+    try:
+        info = os.stat(path)
+    except OSError as exc:
+        if os.path.islink(path):
+            if exc.errno == errno.ELOOP:
+                raise IntakeError("skipped: symbolic link loop") from exc
+            if exc.errno == errno.ENOENT:
+                raise IntakeError("skipped: broken symbolic link") from exc
+        raise IntakeError(f"unreadable: {exc.strerror or _short(exc)}") from exc
+    if stat.S_ISREG(info.st_mode):
+        return info.st_size
+    if stat.S_ISDIR(info.st_mode):
+        try:
+            with os.scandir(path):
+                pass
+        except OSError as exc:
+            raise IntakeError(f"unreadable: folder cannot be listed ({exc.strerror or _short(exc)})") from exc
+        raise IntakeError(FOLDER_AGAIN)
+    kind = next((name for test, name in _FILE_KINDS if test(info.st_mode)), "unknown kind")
+    raise IntakeError(f"skipped: not a regular file ({kind})")
 
 
 def sha256_file(path: Path) -> str:
-    """Hex SHA-256 of the file's bytes, read in 1 MiB chunks so memory stays flat."""
+    """Hex SHA-256 of the file's bytes, read in 1 MiB chunks so memory stays flat.
+
+    Opened without waiting (O_NONBLOCK), so a FIFO put in the file's place raises OSError
+    instead of blocking.
+    """
     digest = hashlib.sha256()
-    with open(path, "rb") as f:
+    fd = os.open(path, os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_BINARY", 0))
+    with open(fd, "rb") as f:
+        if not stat.S_ISREG(os.fstat(fd).st_mode):
+            raise OSError(errno.EINVAL, "not a regular file", str(path))
         for chunk in iter(lambda: f.read(1 << 20), b""):
             digest.update(chunk)
     return digest.hexdigest()
@@ -234,13 +333,10 @@ def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXE
     ratio (at most MAX_ASPECT_RATIO:1) and, with `min_side`, the pixel count after the resize.
     """
     path = Path(path)
+    size = check_file(path)   # before any open: links, folders, FIFOs and devices get their own status
     suffix = path.suffix.lower()
     if suffix not in IMAGE_SUFFIXES:
         raise IntakeError(f"skipped: not an image file type ({suffix or 'no extension'})")
-    try:
-        size = path.stat().st_size
-    except OSError as exc:
-        raise IntakeError(f"unreadable: {exc.strerror or _short(exc)}") from exc
     if size == 0:
         raise IntakeError("unreadable: empty file (0 bytes)")
     try:
