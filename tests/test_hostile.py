@@ -306,3 +306,20 @@ def test_every_entry_the_walk_meets_gets_a_row_and_nothing_blocks(tmp_path):
         "sock.png": "skipped: not a regular file (socket)",
     }
     assert found.left_out == {"hidden": 1, "bank folder": 1}   # the documented exclusions, counted
+
+
+# --- 6. the embedding cache does not change a file's status -----------------------------------------
+
+def test_a_file_gets_the_same_status_with_a_warm_cache_and_without_one(tmp_path):
+    from oddling.embedding.cache import EmbeddingCache
+
+    root = tmp_path / "in"
+    png = _png(root / "a.png")
+    (root / "noext").write_bytes(png.read_bytes())        # the same PNG bytes, no image suffix
+    (root / "a.txt").write_bytes(png.read_bytes())
+    cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+    assert _statuses(root, [png], cache=cache) == {"a.png": "ok"}   # warms the cache with this content
+    warm = _statuses(root, cache=cache)
+    cold = _statuses(root)
+    assert warm == cold == {"a.png": "ok", "a.txt": "skipped: not an image file type (.txt)",
+                            "noext": "skipped: not an image file type (no extension)"}

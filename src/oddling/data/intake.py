@@ -323,6 +323,22 @@ def _decode(path: Path, min_side: int | None, max_pixels: int) -> Image.Image:
     return rgb
 
 
+def check_type(path: Path) -> None:
+    """The checks made before a file is opened, IntakeError with the status when one fails: a
+    regular file (check_file), with an image suffix, not empty.
+
+    load_rgb makes them first; so does the embedding runner before it looks in the cache, so a
+    file gets the same status whatever the cache holds.
+    """
+    path = Path(path)
+    size = check_file(path)   # before any open: links, folders, FIFOs and devices get their own status
+    suffix = path.suffix.lower()
+    if suffix not in IMAGE_SUFFIXES:
+        raise IntakeError(f"skipped: not an image file type ({suffix or 'no extension'})")
+    if size == 0:
+        raise IntakeError("unreadable: empty file (0 bytes)")
+
+
 def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXELS_DEFAULT) -> Image.Image:
     """Decode `path` to a fully loaded RGB image, EXIF orientation applied; IntakeError says why not.
 
@@ -333,12 +349,7 @@ def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXE
     ratio (at most MAX_ASPECT_RATIO:1) and, with `min_side`, the pixel count after the resize.
     """
     path = Path(path)
-    size = check_file(path)   # before any open: links, folders, FIFOs and devices get their own status
-    suffix = path.suffix.lower()
-    if suffix not in IMAGE_SUFFIXES:
-        raise IntakeError(f"skipped: not an image file type ({suffix or 'no extension'})")
-    if size == 0:
-        raise IntakeError("unreadable: empty file (0 bytes)")
+    check_type(path)
     try:
         return _decode(path, min_side, max_pixels)
     except IntakeError:
