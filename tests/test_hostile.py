@@ -323,3 +323,48 @@ def test_a_file_gets_the_same_status_with_a_warm_cache_and_without_one(tmp_path)
     cold = _statuses(root)
     assert warm == cold == {"a.png": "ok", "a.txt": "skipped: not an image file type (.txt)",
                             "noext": "skipped: not an image file type (no extension)"}
+
+
+# --- 7. files holding several frames --------------------------------------------------------------
+
+RED, GREEN, BLUE = (220, 30, 30), (30, 200, 30), (30, 30, 220)
+
+
+def _frames(path, fmt):
+    first, *rest = [Image.new("RGB", (16, 16), c) for c in (RED, GREEN, BLUE)]
+    first.save(path, format=fmt, save_all=True, append_images=rest)
+    return path
+
+
+@pytest.mark.parametrize("name, fmt", [("pages.tif", "TIFF"), ("anim.gif", "GIF"), ("anim.webp", "WEBP"),
+                                       ("anim.png", "PNG")])
+def test_a_multi_frame_file_is_scored_on_its_first_frame_and_says_so(tmp_path, monkeypatch, name, fmt):
+    from oddling.data.intake import FRAMES, check_header, frames_note, load_rgb
+    from oddling.reporting.results import count_ok
+
+    path = _frames(tmp_path / name, fmt)
+    with Image.open(path) as stored:   # outside reference: Pillow's own frame count of the file
+        assert stored.n_frames == 3
+    image = load_rgb(path)
+    assert np.abs(np.asarray(image)[8, 8].astype(int) - RED).max() <= 12   # the first frame
+    assert image.info[FRAMES] == 3
+    note = frames_note(image.info[FRAMES])
+    assert note == "first of 3 frames"
+    row = ScoreRow(path=name, status="ok", score=0.1, note=note)
+    assert _csv_rows(rows_to_csv([row]))[0]["status"] == "ok (first of 3 frames)"
+    assert count_ok([row]) == 1        # the status itself stays "ok": every `== OK` check keeps working
+    _refuse_decoding(monkeypatch)
+    assert check_header(path) == 3     # the count without decoding, for files whose vector is cached
+
+
+def test_single_frame_files_and_camera_mpo_jpegs_get_no_note(tmp_path):
+    from oddling.data.intake import FRAMES, frames_note, load_rgb
+
+    single = _png(tmp_path / "one.png")
+    assert frames_note(load_rgb(single).info[FRAMES]) == ""
+    # MPO: the multi-picture JPEG cameras write as .jpg; the second picture is a preview, not a page.
+    mpo = _frames(tmp_path / "camera.jpg", "MPO")
+    with Image.open(mpo) as stored:
+        assert (stored.format, stored.n_frames) == ("MPO", 3)
+    assert frames_note(load_rgb(mpo).info[FRAMES]) == ""
+    assert _csv_rows(rows_to_csv([ScoreRow(path="one.png", status="ok", score=0.1)]))[0]["status"] == "ok"

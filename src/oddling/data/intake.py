@@ -17,6 +17,7 @@ IMAGE_SUFFIXES = frozenset({".jpg", ".jpeg", ".png", ".bmp", ".tif", ".tiff", ".
 MAX_PIXELS_DEFAULT = 89_478_485     # decompression-bomb guard: Pillow's own default limit (~9.5k x 9.5k)
 MAX_ASPECT_RATIO = 50               # longer side / shorter side; beyond it the resize to min_side explodes
 ORIGINAL_SIZE = "oddling_original_size"   # key in image.info: (width, height) of the file itself
+FRAMES = "oddling_frames"          # key in image.info: frames (pages) in the file, None if uncountable
 BANK_MARKER = "bank.json"          # a folder holding this file is an oddling bank, never input
 
 # Only the decoders for the suffixes above: a file named .png that holds EPS or another rarely
@@ -296,17 +297,39 @@ def _check_shape(width: int, height: int, min_side: int | None, max_pixels: int)
                               f"pixels, limit {max_pixels})")
 
 
+def _check_header(opened: Image.Image, min_side: int | None, max_pixels: int) -> int | None:
+    """The checks made from the header, before any pixel memory is allocated; the frame count."""
+    width, height = opened.size
+    if width * height > max_pixels:
+        raise IntakeError(f"unreadable: image too large ({width} x {height} pixels, limit {max_pixels})")
+    _check_shape(width, height, min_side, max_pixels)
+    if opened.format == "MPO":
+        return 1   # a camera JPEG with a preview picture after the photo: the photo is the image
+    try:
+        frames = int(getattr(opened, "n_frames", 1))   # GIF, WebP, APNG, TIFF: may read on through the file
+    except Exception:   # a broken later frame must not cost the first one: it is still scored
+        frames = None
+    if frames != 1:
+        opened.seek(0)
+    return frames
+
+
+def frames_note(frames: int | None) -> str:
+    """What the status of an ok file adds when only its first frame (page) was scored: "" for one."""
+    if frames == 1:
+        return ""
+    return f"first of {frames} frames" if frames else "first frame only (the others could not be counted)"
+
+
 def _decode(path: Path, min_side: int | None, max_pixels: int) -> Image.Image:
     with Image.open(path, formats=_FORMATS) as opened:
+        frames = _check_header(opened, min_side, max_pixels)
         width, height = opened.size
-        if width * height > max_pixels:   # from the header, before any pixel memory is allocated
-            raise IntakeError(f"unreadable: image too large ({width} x {height} pixels, limit {max_pixels})")
-        _check_shape(width, height, min_side, max_pixels)
         if min_side and opened.format in _DRAFT_FORMATS:
             # Decode at the smallest DCT scale (1/2, 1/4, 1/8) keeping both sides >= min_side.
             # A square request holds whichever way the EXIF orientation later turns the image.
             opened.draft("RGB", (min_side, min_side))
-        opened.load()   # a freshly opened animation is at frame 0: only the first frame is decoded
+        opened.load()   # at frame 0: only the first frame (page) of an animation or a TIFF is decoded
         decoded_size = opened.size
         try:
             image = ImageOps.exif_transpose(opened)   # always a new image, independent of the file
@@ -320,7 +343,13 @@ def _decode(path: Path, min_side: int | None, max_pixels: int) -> Image.Image:
     except ValueError as exc:   # e.g. a TIFF in LAB, which Pillow cannot convert to RGB
         raise IntakeError(f"unreadable: cannot convert mode {image.mode} to RGB ({_short(exc)})") from exc
     rgb.info[ORIGINAL_SIZE] = original_size
+    rgb.info[FRAMES] = frames
     return rgb
+
+
+def _header(path: Path, min_side: int | None, max_pixels: int) -> int | None:
+    with Image.open(path, formats=_FORMATS) as opened:
+        return _check_header(opened, min_side, max_pixels)
 
 
 def check_type(path: Path) -> None:
@@ -347,11 +376,26 @@ def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXE
     Truncated files fail (ImageFile.LOAD_TRUNCATED_IMAGES is left alone). The pixel count is
     checked against `max_pixels` from the header, before any pixel is decoded; so are the aspect
     ratio (at most MAX_ASPECT_RATIO:1) and, with `min_side`, the pixel count after the resize.
+    Animations and multi-page files give their first frame; image.info[FRAMES] holds the count
+    (frames_note turns it into the words for the status).
     """
     path = Path(path)
     check_type(path)
+    return _intake(path, _decode, min_side, max_pixels)
+
+
+def check_header(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXELS_DEFAULT) -> int | None:
+    """Every check load_rgb makes before decoding pixels (the same IntakeError statuses), and the
+    file's frame count (None if it cannot be counted): for a file whose vector is cached."""
+    path = Path(path)
+    check_type(path)
+    return _intake(path, _header, min_side, max_pixels)
+
+
+def _intake(path: Path, read, min_side: int | None, max_pixels: int):
+    """read(path, min_side, max_pixels), with whatever Pillow raises turned into IntakeError."""
     try:
-        return _decode(path, min_side, max_pixels)
+        return read(path, min_side, max_pixels)
     except IntakeError:
         raise
     except Image.DecompressionBombError as exc:

@@ -23,6 +23,7 @@ class ScoreRow:
     nearest: list[str] = field(default_factory=list)          # nearest references, nearest first
     nearest_distances: list[float] = field(default_factory=list)
     health: str = ""             # "ok" or the image statistics out of the references' range
+    note: str = ""               # about an ok file, e.g. "first of 3 frames"; status stays "ok"
     label: int | None = None     # evaluate only: 1 anomalous, 0 normal
     kind: str | None = None      # evaluate only: anomaly kind (subfolder name) or "normal"
     anomaly_grid: object = None  # local mode: (G, G) nearest-patch distances; see ScoreResult.anomaly_map
@@ -87,7 +88,7 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
             csv_text(r.nearest[0]) if r.nearest else "",
             _num(r.nearest_distances[0]) if r.nearest_distances else "",
             csv_text(r.health),
-            csv_text(r.status),
+            csv_text(f"{r.status} ({r.note})" if r.note else r.status),
         ]
         if with_labels:
             line += ["" if r.label is None else ("anomalous" if r.label else "normal"), csv_text(r.kind or "")]
