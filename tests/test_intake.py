@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from oddling.data.intake import IMAGE_SUFFIXES, IntakeError, discover, load_rgb, sha256_file
+from oddling.data.intake import FOLDER_AGAIN, IMAGE_SUFFIXES, IntakeError, discover, load_rgb, sha256_file
 
 RED, BLUE = (220, 30, 30), (30, 30, 220)
 
@@ -66,10 +66,20 @@ def test_discover_skips_a_folder_holding_bank_json(tmp_path):
 
 
 @pytest.mark.skipif(not hasattr(os, "symlink"), reason="no symlinks")
-def test_discover_does_not_follow_symlinked_folders(tmp_path):
+def test_discover_lists_a_symlink_loop_instead_of_following_it_again(tmp_path):
     touch(tmp_path / "real" / "x.png")
     (tmp_path / "loop").symlink_to(tmp_path, target_is_directory=True)
-    assert rel(discover(tmp_path), tmp_path) == ["real/x.png"]
+    assert rel(discover(tmp_path), tmp_path) == ["loop", "real/x.png"]
+    assert status_of(tmp_path / "loop") == FOLDER_AGAIN
+
+
+@pytest.mark.skipif(not hasattr(os, "symlink"), reason="no symlinks")
+def test_discover_follows_a_symlinked_folder_once(tmp_path):
+    touch(tmp_path / "outside" / "o.png")
+    touch(tmp_path / "in" / "a.png")
+    (tmp_path / "in" / "ext").symlink_to(tmp_path / "outside", target_is_directory=True)
+    (tmp_path / "in" / "ext2").symlink_to(tmp_path / "outside", target_is_directory=True)
+    assert rel(discover(tmp_path / "in"), tmp_path / "in") == ["a.png", "ext/o.png", "ext2"]
 
 
 def test_discover_raises_when_root_is_not_a_folder(tmp_path):

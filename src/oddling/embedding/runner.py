@@ -18,7 +18,7 @@ from tqdm import tqdm
 from oddling.backbones import Backbone
 from oddling.embedding.cache import EmbeddingCache
 from oddling.data.health import STATS, image_stats
-from oddling.data.intake import ORIGINAL_SIZE, IntakeError, load_rgb, sha256_file
+from oddling.data.intake import ORIGINAL_SIZE, IntakeError, check_type, load_rgb, sha256_file
 from oddling.data.preprocess import Preprocessing
 
 OK = "ok"
@@ -56,7 +56,12 @@ def default_workers() -> int:
 def _prepare(path: Path, preprocessing: Preprocessing, cache: EmbeddingCache | None = None):
     """(sha256, network input, health statistics, status) for one file; never raises for a bad file."""
     try:
+        # Before opening (a FIFO would block) and before the cache: a cached vector of the same
+        # bytes must not turn "noext" or "a.txt" into "ok". Links, folders, devices get their status.
+        check_type(path)
         digest = sha256_file(path)
+    except IntakeError as exc:
+        return None, None, None, exc.status
     except OSError as exc:
         return None, None, None, f"unreadable: {exc.strerror or exc}"
     if cache is not None and cache.get(digest) is not None:

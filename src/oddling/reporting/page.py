@@ -24,7 +24,7 @@ from PIL import Image
 from oddling import __version__
 from oddling.bank.store import Bank
 from oddling.errors import OddlingError
-from oddling.data.intake import IntakeError, load_rgb
+from oddling.data.intake import IntakeError, display_path, load_rgb
 from oddling.reporting.results import ScoreRow, sort_rows, write_text
 
 HISTOGRAM_FILE = "scores_histogram.png"
@@ -237,6 +237,11 @@ def _e(value) -> str:
     return html.escape(str(value), quote=True)
 
 
+def _path(value) -> str:
+    """A path (or a name taken from one) as page text: intake.display_path, then HTML-escaped."""
+    return _e(display_path(str(value)))
+
+
 def _percent(rate: float | None) -> str:
     return "n/a" if rate is None else f"{rate * 100:.4g}%"
 
@@ -272,7 +277,7 @@ class _Page:
         self.scored = [r for r in rows if r.score is not None]
         self.unreadable = [r for r in rows if r.score is None]
         self.labelled = any(r.label is not None for r in rows)
-        self.title = title or f"oddling review: {scored_root.name or scored_root}"
+        self.title = title or f"oddling review: {display_path(str(scored_root.name or scored_root))}"
         self.ref_ids: dict[Path, str] = {}
         self.ref_uris: dict[str, str] = {}
 
@@ -320,17 +325,17 @@ class _Page:
             cutoff = (f"none: {len(b.calibration_scores)} calibration images are too few for a false-alarm "
                       f"rate of {_percent(self.target_fpr)}, so nothing can be flagged")
         facts = [
-            ("Scored folder", f"<code>{_e(self.scored_root)}</code>"),
+            ("Scored folder", f"<code>{_path(self.scored_root)}</code>"),
             ("Files", (f"{len(self.rows)} found, {len(self.scored)} scored, <strong>{flagged} flagged</strong>, "
                        f"{len(self.unreadable)} not scored")),
             ("Flag rule", cutoff),
-            ("Bank", f"<code>{_e(b.path) if b.path else '(not saved)'}</code>"),
+            ("Bank", f"<code>{_path(b.path) if b.path else '(not saved)'}</code>"),
             ("Representation", f"<code>{_e(b.representation.get('id', '?'))}</code>"),
             ("Detector", (f"<code>{_e(b.detector.name)}</code> {_e(_params_text(b.detector.get_params()))}: "
                           f"{_e(b.detector.describe_score())}")),
             ("References", (f"{b.size} images; calibration {_e(b.calibration.get('method', '?'))}, "
                             f"{len(b.calibration_scores)} scores")),
-            ("Reference folder", f"<code>{_e(b.reference_root)}</code>"),
+            ("Reference folder", f"<code>{_path(b.reference_root)}</code>"),
             ("Report made", _e(_dt.datetime.now().astimezone().replace(microsecond=0).isoformat())),
             ("oddling", f"{_e(__version__)} (bank made with {_e(b.tool_version)} on {_e(b.created)})"),
         ]
@@ -341,7 +346,7 @@ class _Page:
 
     def _figure(self, key: str, alt: str, caption: str, filename: str) -> str:
         return (f'<figure><img src="{self.figures[key]}" alt="{_e(alt)}">'
-                f"<figcaption>{caption} PNG copy: <code>{_e(self.plots_dir)}/{_e(filename)}</code></figcaption></figure>")
+                f"<figcaption>{caption} PNG copy: <code>{_path(self.plots_dir)}/{_e(filename)}</code></figcaption></figure>")
 
     def _distribution(self) -> str:
         caption = ("Shaded: calibration scores of the bank's own images, each scored by a detector that had not "
@@ -368,7 +373,7 @@ class _Page:
             ("False-alarm rate at 95% recall", _num(m["fpr_at_tpr95"], 3)),
             ("Test images", f"{m['n_normal']} normal, {m['n_anomalous']} anomalous"),
         ]
-        per_kind = "".join(f"<tr><td>{_e(k)}</td><td class=\"num\">{_num(v, 3)}</td></tr>"
+        per_kind = "".join(f"<tr><td>{_path(k)}</td><td class=\"num\">{_num(v, 3)}</td></tr>"
                            for k, v in sorted(m.get("per_kind_auroc", {}).items()))
         kinds = ('<p class="table-title">AUROC per anomaly kind (its anomalies against all normals)</p>'
                  '<table class="kinds"><thead><tr><th>kind</th><th>AUROC</th></tr></thead>'
@@ -385,7 +390,7 @@ class _Page:
         if self.labelled:
             names = sorted({r.kind for r in self.shown if r.kind and r.label == 1})
             options = ['<option value="">all</option>', '<option value="normal">normal</option>']
-            options += [f'<option value="{_e(k)}">{_e(k)}</option>' for k in names]
+            options += [f'<option value="{_path(k)}">{_path(k)}</option>' for k in names]
             if any(r.label is None for r in self.shown):
                 options.append('<option value="(unlabelled)">(unlabelled)</option>')
             kinds = (f'<label>True class <select id="f-kind">{"".join(options)}</select></label>')
@@ -439,40 +444,40 @@ class _Page:
     def _card(self, rank: int, row: ScoreRow) -> str:
         thumb = self.thumbs.get(self.scored_root / row.path)
         name = row.path.rsplit("/", 1)[-1]
-        folder = f'<p class="path">{_e(row.path)}</p>' if name != row.path else ""
+        folder = f'<p class="path">{_path(row.path)}</p>' if name != row.path else ""
         if thumb:
-            image = f'<img class="thumb" src="{thumb}" alt="{_e(name)}">'
+            image = f'<img class="thumb" src="{thumb}" alt="{_path(name)}">'
         else:
             image = '<div class="thumb missing">no preview<br>(file changed or gone)</div>'
         heat = self.heatmaps.get(row.path)
         heatmap = (f'<p class="refs-title">Anomaly map (red = far from every normal patch)</p>'
-                   f'<img class="heatmap" src="{heat}" alt="anomaly map of {_e(name)}">') if heat else ""
+                   f'<img class="heatmap" src="{heat}" alt="anomaly map of {_path(name)}">') if heat else ""
         flag = ('<span class="badge flagged">Flagged</span>' if row.flagged
                 else '<span class="badge calm">Not flagged</span>')
         truth = ""
         if row.label is not None:
             truth_text = "anomalous" + (f" ({row.kind})" if row.kind else "") if row.label == 1 else "normal"
-            truth = f'<div><dt>True label</dt><dd class="truth-{row.label}">{_e(truth_text)}</dd></div>'
+            truth = f'<div><dt>True label</dt><dd class="truth-{row.label}">{_path(truth_text)}</dd></div>'
         kind = "(unlabelled)" if row.label is None else ("normal" if row.label == 0 else (row.kind or ""))
         refs = []
         for ref, dist in zip(row.nearest, row.nearest_distances):
             ref_name = ref.rsplit("/", 1)[-1]
             rid = self._ref_id(Path(self.bank.reference_root) / ref)
-            picture = (f'<img src="{_BLANK}" data-ref="{rid}" alt="{_e(ref_name)}">' if rid
+            picture = (f'<img src="{_BLANK}" data-ref="{rid}" alt="{_path(ref_name)}">' if rid
                        else '<span class="refmissing">not found</span>')
-            refs.append(f'<li title="{_e(ref)}">{picture}<span class="dist">{_num(dist)}</span></li>')
+            refs.append(f'<li title="{_path(ref)}">{picture}<span class="dist">{_num(dist)}</span></li>')
         buttons = "".join(f'<button type="button" class="mark mark-{d}" data-decision="{d}" aria-pressed="false">'
                           f"{d}</button>" for d in DECISIONS)
         return (
-            f'<li class="card{" is-flagged" if row.flagged else ""}" data-path="{_e(row.path)}" '
-            f'data-score="{row.score!r}" data-flagged="{"1" if row.flagged else "0"}" data-kind="{_e(kind)}">'
+            f'<li class="card{" is-flagged" if row.flagged else ""}" data-path="{_path(row.path)}" '
+            f'data-score="{row.score!r}" data-flagged="{"1" if row.flagged else "0"}" data-kind="{_path(kind)}">'
             f'<div class="card-top">{image}<div class="card-info">'
-            f'<p class="rank">#{rank}</p><h3 class="name" title="{_e(row.path)}">{_e(name)}</h3>'
+            f'<p class="rank">#{rank}</p><h3 class="name" title="{_path(row.path)}">{_path(name)}</h3>'
             f'{folder}{flag}'
             f'<dl class="numbers"><div><dt>Score</dt><dd>{_num(row.score)}</dd></div>'
             f"<div><dt>p-value</dt><dd>{_p(row.p_value)}</dd></div>{truth}</dl></div></div>{heatmap}"
             + (f'<p class="refs-title">{self._refs_title}</p><ol class="refs">{"".join(refs)}</ol>' if refs else "") +
-            f'<div class="decide" role="group" aria-label="Decision for {_e(name)}">{buttons}</div>'
+            f'<div class="decide" role="group" aria-label="Decision for {_path(name)}">{buttons}</div>'
             f'<p class="decision-state">No decision yet</p></li>'
         )
 
@@ -480,7 +485,7 @@ class _Page:
         if not self.unreadable:
             body = "<p>None: every file found was scored.</p>"
         else:
-            lines = "".join(f"<tr><td><code>{_e(r.path)}</code></td><td>{_e(r.status)}</td></tr>"
+            lines = "".join(f"<tr><td><code>{_path(r.path)}</code></td><td>{_path(r.status)}</td></tr>"
                             for r in self.unreadable)
             body = (f'<table class="unreadable"><thead><tr><th>file</th><th>reason</th></tr></thead>'
                     f"<tbody>{lines}</tbody></table>")
@@ -569,6 +574,19 @@ main,.masthead,footer{padding:0 10px}h1{font-size:1.3rem}
 }
 """
 
+# The decisions export's cell functions (also run on their own by tests/test_hostile.py).
+# csvText is results.csv_text for a path already in display form (data-path holds
+# display_path); results.path_from_cell reads an exported path back.
+CSV_CELLS_JS = r"""
+  // OWASP "CSV Injection": a cell starting with = + - @ TAB or CR (after any single quotes) gets
+  // one more leading single quote, so a spreadsheet shows it as text instead of running it.
+  var FORMULA_START = /^'*[=+\-@\t\r]/;
+  function csvText(text) { return FORMULA_START.test(text) ? "'" + text : text; }
+  function csvField(text) {
+    return /[",\r\n]|^\s|\s$/.test(text) ? '"' + text.replace(/"/g, '""') + '"' : text;
+  }
+"""
+
 _JS = r"""
 (function () {
   "use strict";
@@ -612,14 +630,12 @@ _JS = r"""
     apply();
   });
 
-  function csvField(text) {
-    return /[",\r\n]|^\s|\s$/.test(text) ? '"' + text.replace(/"/g, '""') + '"' : text;
-  }
+/*CSV_CELLS*/
   function decisionsCsv() {
     var lines = ["path,decision"];
     cards.forEach(function (card) {   // in rank order, as on the page
       var path = card.getAttribute("data-path");
-      if (marks[path]) { lines.push(csvField(path) + "," + marks[path]); }
+      if (marks[path]) { lines.push(csvField(csvText(path)) + "," + marks[path]); }
     });
     return lines.join("\n") + "\n";
   }
@@ -682,6 +698,6 @@ _JS = r"""
   rankOrder.forEach(showMark);
   apply();
 }());
-"""
+""".replace("/*CSV_CELLS*/", CSV_CELLS_JS.lstrip("\n"))
 
 __all__ = ["CAUTION", "plot_score_histogram", "plots_folder", "run_id", "thumbnail_uri", "write_report"]

@@ -1,12 +1,12 @@
 """Per-file results and their files: the scores CSV (sorted, every input accounted for) and the JSON summary."""
 from __future__ import annotations
 
-import csv
-import io
 import math
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from oddling.data.intake import display_path, path_from_display
 from oddling.embedding.runner import OK
 from oddling.numbers import json_number  # noqa: F401  (re-exported: its home is oddling.numbers)
 
@@ -24,6 +24,7 @@ class ScoreRow:
     nearest: list[str] = field(default_factory=list)          # nearest references, nearest first
     nearest_distances: list[float] = field(default_factory=list)
     health: str = ""             # "ok" or the image statistics out of the references' range
+    note: str = ""               # about an ok file, e.g. "first of 3 frames"; status stays "ok"
     label: int | None = None     # evaluate only: 1 anomalous, 0 normal
     kind: str | None = None      # evaluate only: anomaly kind (subfolder name) or "normal"
     anomaly_grid: object = None  # local mode: (G, G) nearest-patch distances; see ScoreResult.anomaly_map
@@ -42,26 +43,58 @@ def _num(value: float | None, digits: int = 6) -> str:
     return f"{value:.{digits}f}"
 
 
+# OWASP "CSV Injection": a spreadsheet runs a cell starting with = + - @ TAB or CR as a formula.
+# Such a text cell gets one leading single quote. Cells that already start with single quotes
+# followed by one of those get one more, so the rule stays reversible (see path_from_cell).
+FORMULA_START = re.compile("^'*[=+\\-@\t\r]")
+_QUOTED_FORMULA = re.compile("^'+[=+\\-@\t\r]")
+
+
+def csv_text(value: str) -> str:
+    """A text cell of a CSV (path, nearest, health, status, kind; never a number): the path as
+    intake.display_path writes it, then neutralised against formula injection."""
+    text = display_path(value)
+    return "'" + text if FORMULA_START.match(text) else text
+
+
+def path_from_cell(cell: str) -> str:
+    """The inverse of csv_text: the str that opens the real file, from a path cell of the scores
+    CSV or the page's decisions export (one leading ' dropped, then intake.path_from_display)."""
+    if _QUOTED_FORMULA.match(cell):
+        cell = cell[1:]
+    return path_from_display(cell)
+
+
+def _field(cell: str) -> str:
+    """RFC 4180 quoting: a cell holding a comma, a double quote, CR or LF is quoted, quotes doubled.
+
+    csv.writer's QUOTE_MINIMAL quotes only the characters of its line terminator ("\\n" here), so
+    a lone "\\r" in a file name went out unquoted and split the row for every reader.
+    """
+    if any(c in cell for c in ',"\r\n'):
+        return '"' + cell.replace('"', '""') + '"'
+    return cell
+
+
 def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
-    out = io.StringIO()
+    """The scores CSV: one line per row ending in "\\n", cells quoted as _field says."""
     columns = SCORE_COLUMNS + (["label", "kind"] if with_labels else [])
-    writer = csv.writer(out, lineterminator="\n")
-    writer.writerow(columns)
+    lines = [columns]
     for r in rows:
         line = [
-            r.path,
+            csv_text(r.path),
             _num(r.score),
             _num(r.p_value),
             "" if r.flagged is None else ("true" if r.flagged else "false"),
-            r.nearest[0] if r.nearest else "",
+            csv_text(r.nearest[0]) if r.nearest else "",
             _num(r.nearest_distances[0]) if r.nearest_distances else "",
-            r.health,
-            r.status,
+            csv_text(r.health),
+            csv_text(f"{r.status} ({r.note})" if r.note else r.status),
         ]
         if with_labels:
-            line += ["" if r.label is None else ("anomalous" if r.label else "normal"), r.kind or ""]
-        writer.writerow(line)
-    return out.getvalue()
+            line += ["" if r.label is None else ("anomalous" if r.label else "normal"), csv_text(r.kind or "")]
+        lines.append(line)
+    return "".join(",".join(_field(cell) for cell in line) + "\n" for line in lines)
 
 
 def write_text(path: Path, text: str, force: bool = False) -> Path:
