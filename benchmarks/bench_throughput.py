@@ -8,7 +8,7 @@ Prints ratios, never asserts timings: the machine is shared and noisy.
   2. exact kNN search with faiss vs scikit-learn's brute-force NearestNeighbors at bank x 1280;
   3. peak memory (RSS) of embedding N and 4N images in fresh processes: flat means streaming;
   4. share of the compute limit: backbone FLOPs x images/s over measured fp32 GEMM FLOP/s;
-  5. local mode (`fit --mode local`): fit of 200 references and scoring, ms per image, bank MB
+  5. patch detector (`fit --detector patch-knn`): fit of 200 references and scoring, ms per image, bank MB
      (budget ~150 ms per image on 2 cores at the default coreset). `--local-only` runs just this.
 """
 from __future__ import annotations
@@ -121,7 +121,7 @@ def child_peak_rss(folder: Path, n: int) -> float:
 
 
 def local_mode(folder: Path, n_references: int = 200, n_scored: int = 100) -> tuple[float, float, dict]:
-    """(fit ms/image, score ms/image, bank's local record) for `fit --mode local` at the default coreset."""
+    """(fit ms/image, score ms/image, the patch detector's state) for `fit --detector patch-knn` at the default coreset."""
     import shutil
 
     import oddling
@@ -134,12 +134,12 @@ def local_mode(folder: Path, n_references: int = 200, n_scored: int = 100) -> tu
             shutil.copy(p, target / p.name)
     options = oddling.RunOptions(runtime="torch", use_cache=False, progress=False)
     start = time.perf_counter()
-    bank = oddling.fit(refs, None, mode="local", target_fpr=0.1, options=options)
+    bank = oddling.fit(refs, None, detector="patch-knn", target_fpr=0.1, options=options)
     fit_ms = (time.perf_counter() - start) * 1000 / len(bank.references)
     start = time.perf_counter()
     result = oddling.score(incoming, bank, options=options)
     score_ms = (time.perf_counter() - start) * 1000 / len(result.scored)
-    return fit_ms, score_ms, bank.local
+    return fit_ms, score_ms, bank.detector.state()[0] | {"coreset_fraction": bank.detector.coreset}
 
 
 def say_local(say, folder: Path) -> None:

@@ -36,12 +36,15 @@ def _bank(ref_root, names) -> Bank:
     for i, name in enumerate(names):
         _png(ref_root / name, (40 * i, 120, 200))
     n = len(names)
+    from oddling.detectors.knn import KNNDetector
+
+    features = np.eye(n, 4, dtype=np.float32)
     return Bank(
-        backbone={"id": "efficientnet-lite0", "weights_sha256": "ab" * 32, "preprocessing": {"crop": 224},
-                  "embedding_dim": 4},
-        mode="global", k=1,
+        representation={"kind": "embedding", "id": "efficientnet-lite0", "backbone": "efficientnet-lite0",
+                        "preprocessing": {"crop": 224}, "dim": 4},
+        detector=KNNDetector(k=1).load_state({}, {"references": features}),
         references=[{"path": name, "sha256": f"{i:064d}"} for i, name in enumerate(names)],
-        embeddings=np.eye(n, 4, dtype=np.float32),
+        features=features,
         calibration_scores=np.linspace(0.1, 0.4, 60),
         calibration={"method": "leave-one-out", "n": 60, "target_fpr": 0.05, "cutoff": 0.37},
         reference_root=str(ref_root), tool_version="0.1.0", created="2026-01-01T00:00:00+00:00",

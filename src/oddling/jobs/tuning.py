@@ -79,6 +79,7 @@ class TuneResult:
     bank_path: Path | None
     files: dict = field(default_factory=dict)
     stopped_early: bool = False
+    labels: np.ndarray | None = field(default=None, repr=False)   # of the labelled images, in discovery order
 
     def summary(self) -> dict:
         return {
@@ -249,7 +250,7 @@ def tune(
     result = TuneResult(chosen, board, holdout, holdout_ci,
                         {"normal": int(((labels == 0) & choose).sum()), "anomalous": int(((labels == 1) & choose).sum())},
                         {"normal": int(((labels == 0) & held).sum()), "anomalous": int(((labels == 1) & held).sum())},
-                        bank_path, files, stopped)
+                        bank_path, files, stopped, labels)
     if bank_path is not None:
         save_bank(chosen.bank, bank_path, force=force)
         write_leaderboard(result)
