@@ -16,12 +16,7 @@ def _value(x: float | None) -> str:
     return "n/a" if x is None else f"{x:.3f}"
 
 
-def _save(fig, ax, title: str, path: str | os.PathLike) -> Path:
-    ax.set_xlim(0.0, 1.0)
-    ax.set_ylim(0.0, 1.02)
-    ax.set_aspect("equal")
-    ax.set_title(title)
-    ax.grid(True, alpha=0.3)
+def _write(fig, path: str | os.PathLike) -> Path:
     fig.tight_layout()
     path = Path(path)
     try:
@@ -29,6 +24,15 @@ def _save(fig, ax, title: str, path: str | os.PathLike) -> Path:
     finally:
         plt.close(fig)
     return path
+
+
+def _save(fig, ax, title: str, path: str | os.PathLike) -> Path:
+    ax.set_xlim(0.0, 1.0)
+    ax.set_ylim(0.0, 1.02)
+    ax.set_aspect("equal")
+    ax.set_title(title)
+    ax.grid(True, alpha=0.3)
+    return _write(fig, path)
 
 
 def plot_roc(fpr, tpr, auc: float | None, path: str | os.PathLike, title: str = "ROC") -> Path:
@@ -103,13 +107,7 @@ def plot_leaderboard(entries: list[dict], holdout_auroc: float | None, path: str
         ax.legend(fontsize=7, loc="lower right")
     ax.set_title("Configurations compared by oddling tune", fontsize=9)
     ax.grid(True, axis="x", alpha=0.3)
-    fig.tight_layout()
-    path = Path(path)
-    try:
-        fig.savefig(path, dpi=_DPI)
-    finally:
-        plt.close(fig)
-    return path
+    return _write(fig, path)
 
 
 def _params(params: dict) -> str:
