@@ -106,6 +106,16 @@ def test_near_ties_go_to_the_cheaper_configuration():
     assert [t.representation for t in rank(trials)] == ["b", "a", "c", "d"]
 
 
+def test_within_one_standard_error_of_the_best_the_cheaper_wins():
+    # The one-standard-error rule (Breiman et al. 1984; Hastie, Tibshirani & Friedman 2009, 7.10).
+    best = Trial("slow", "knn", {}, auroc=0.99, auroc_se=0.02, ms_per_image=30.0)
+    close = Trial("cheap", "pca", {}, auroc=0.975, ms_per_image=1.0)
+    far = Trial("far", "pca", {}, auroc=0.96, ms_per_image=0.5)
+    assert [t.representation for t in rank([best, close, far])] == ["cheap", "slow", "far"]
+    best.auroc_se = 0.001   # a sharp estimate: only the TIE floor applies, and 0.975 is not a tie
+    assert [t.representation for t in rank([best, close, far])] == ["slow", "cheap", "far"]
+
+
 def test_halves_are_stratified_and_seeded():
     labels = np.array([0] * 21 + [1] * 10)
     choose = split_halves(labels, 0)

@@ -9,7 +9,10 @@ them matters as much. So the comparison is run on the data at hand, honestly:
   and its AUROC is then reported on the other half (`holdout_auroc`), which played no part in
   the choice; the leaderboard's figures, measured on the choosing half, are optimistic because
   the best of many is picked there;
-- near ties (AUROC within TIE of the best) go to the cheaper configuration (ms per image).
+- near ties go to the cheaper configuration (ms per image, measured without the cache, as new
+  images will cost): within one standard error of the best (DeLong), the "one-standard-error
+  rule" of Breiman et al. 1984 (Hastie, Tibshirani & Friedman, *Elements of Statistical
+  Learning*, 7.10), and never less than TIE.
 """
 from __future__ import annotations
 
@@ -36,6 +39,7 @@ from oddling.reporting.results import ScoreRow, json_number, write_text
 
 MIN_PER_CLASS = 10     # below this an AUROC, let alone a choice between configurations, means little
 TIE = 0.005            # AUROC differences this small are noise at the usual test-set sizes
+COST_SAMPLE = 16       # images embedded without the cache to measure what a new image costs
 
 # (representation, [(detector, params), ...]); vector detectors for vector representations.
 VECTOR_DETECTORS = [("knn", {"k": 1}), ("knn", {"k": 5}), ("gaussian", {}), ("pca", {"variance": 0.95}),
@@ -52,6 +56,7 @@ class Trial:
     params: dict
     auroc: float | None = None          # on the choosing half
     auroc_ci95: list | None = None
+    auroc_se: float | None = None       # DeLong standard error, for the tie band
     ms_per_image: float | None = None   # features + scoring, per image of the labelled folder
     status: str = "ok"
     bank: object = field(default=None, repr=False)
@@ -122,15 +127,29 @@ def _auroc_with_ci(labels: np.ndarray, scores: np.ndarray) -> tuple[float, list]
     return auroc(labels, scores), list(delong_ci(labels, scores))
 
 
+def _auroc_se(labels: np.ndarray, scores: np.ndarray) -> float:
+    from oddling.evaluation.metrics import delong_variance
+
+    return float(np.sqrt(max(delong_variance(labels, scores), 0.0)))
+
+
+def _uncached_ms_per_image(root: Path, paths: list[Path], representation, options: RunOptions) -> float:
+    """What a new image costs: decode, preprocess and features, with the cache out of the way."""
+    start = time.perf_counter()
+    embed_paths(root, paths, representation, RunOptions(**{**options.__dict__, "use_cache": False}), "timing")
+    return 1000 * (time.perf_counter() - start) / max(1, len(paths))
+
+
 def rank(trials: list[Trial]) -> list[Trial]:
-    """Best AUROC first; among those within TIE of the best, the cheapest first; failures last."""
+    """Best AUROC first; among those within the tie band of the best, the cheapest first; failures last."""
     done = [t for t in trials if t.auroc is not None]
     rest = [t for t in trials if t.auroc is None]
     if not done:
         return rest
-    best = max(t.auroc for t in done)
-    ties = sorted((t for t in done if t.auroc >= best - TIE), key=lambda t: (t.ms_per_image or 0.0, -t.auroc))
-    others = sorted((t for t in done if t.auroc < best - TIE), key=lambda t: (-t.auroc, t.ms_per_image or 0.0))
+    top = max(done, key=lambda t: t.auroc)
+    best, band = top.auroc, max(TIE, top.auroc_se or 0.0)
+    ties = sorted((t for t in done if t.auroc >= best - band), key=lambda t: (t.ms_per_image or 0.0, -t.auroc))
+    others = sorted((t for t in done if t.auroc < best - band), key=lambda t: (-t.auroc, t.ms_per_image or 0.0))
     return ties + others + rest
 
 
@@ -216,9 +235,8 @@ def tune(
             try:
                 representation = load_representation(rep_id, options.cache_dir, options.runtime)
                 refs = embed_paths(reference_dir, ref_paths, representation, quiet, "references")
-                t0 = time.perf_counter()
                 test = embed_paths(test_dir, test_paths, representation, quiet, "labelled images")
-                embed_ms = 1000 * (time.perf_counter() - t0) / max(1, len(test_paths))
+                embed_ms = _uncached_ms_per_image(test_dir, test_paths[:COST_SAMPLE], representation, quiet)
             except OddlingError as exc:
                 trials += [Trial(rep_id, n, p, status=f"failed: {exc}") for n, p in configs]
                 bar.update(len(configs))
@@ -233,6 +251,7 @@ def tune(
                     trial.ms_per_image = embed_ms + 1000 * (time.perf_counter() - t0) / max(1, len(scores))
                     use = choose[readable]
                     trial.auroc, trial.auroc_ci95 = _auroc_with_ci(labels[readable][use], scores[use])
+                    trial.auroc_se = _auroc_se(labels[readable][use], scores[use])
                     trial.bank, trial.scores, trial.readable = bank, scores, readable
                 except OddlingError as exc:
                     trial.status = f"failed: {exc}"
