@@ -144,7 +144,7 @@ def test_gallery_stops_at_top_n_and_says_how_many_more(score_run, tmp_path):
     _, doc = _parse(write_report(tmp_path / "report.html", score_run, top_n=4))
     cards = _cards(doc)
     assert [c.get("data-path") for c in cards] == [r.path for r in score_run.rows[:4]]
-    assert "showing 4 of 6 scored images; 2 more not shown" in _text(doc)
+    assert "this page holds the top 4 of 6 scored images" in _text(doc)
 
 
 def test_page_is_self_contained(score_run, tmp_path):
@@ -258,7 +258,23 @@ def test_report_in_headless_chromium(browser, evaluation_run, tmp_path):
         ".map(k => localStorage.getItem(k));")
     assert stored == ['{"normal/c.png":"normal"}']
     exported = list(csv.reader(io.StringIO(browser.execute_script("return window.oddlingDecisionsCsv();"))))
-    assert exported == [["path", "decision"], ["normal/c.png", "normal"]]
+    assert exported[0] == ["path", "decision", "scored_folder"]
+    assert exported[1][:2] == ["normal/c.png", "normal"] and exported[1][2] == str(root.resolve())
+    # choosing the same decision again keeps it; only "clear" clears
+    card = browser.find_element("css selector", '.card[data-path="normal/c.png"]')
+    card.find_element("css selector", '.mark[data-decision="normal"]').click()
+    assert "Decision: normal" in card.text
+    card.find_element("css selector", ".mark-clear").click()
+    assert "No decision yet" in card.text
+    card.find_element("css selector", '.mark[data-decision="normal"]').click()
+    # one counter; an inverted score range says why nothing matches
+    assert browser.find_element("id", "match-count").text.startswith(f"All {len(SCORED)} cards shown")
+    browser.find_element("id", "f-min").send_keys("0.5")
+    browser.find_element("id", "f-max").send_keys("0.2")
+    assert "inverted" in browser.find_element("id", "match-count").text and not _visible_cards(browser)
+    browser.find_element("css selector", 'button[type="reset"]').click()
+    # reference names are on the card, not only on hover
+    assert "r" in card.find_element("css selector", ".refname").text
     browser.find_element("id", "export").click()
     assert severe_console_entries(browser) == []
 

@@ -44,13 +44,14 @@ def _read_decisions(csv_path: Path, root: Path | None) -> list[Path]:
         if not reader.fieldnames or not {"path", "decision"} <= set(reader.fieldnames):
             raise OddlingError(f"{csv_path} must have columns path,decision (got {reader.fieldnames})")
         rows = list(reader)
-    base = root if root is not None else csv_path.parent
     files = []
     for row in rows:
         if (row["decision"] or "").strip().lower() != "normal":
             continue
+        # The page's export names the folder it scored; --root, when given, wins.
+        folder = root if root is not None else Path(row.get("scored_folder") or csv_path.parent)
         path = Path(row["path"])
-        files.append(path if path.is_absolute() else base / path)
+        files.append(path if path.is_absolute() else folder / path)
     missing = [str(p) for p in files if not p.is_file()]
     if missing:
         raise OddlingError(

@@ -25,7 +25,15 @@ from oddling import __version__
 from oddling.bank.store import Bank
 from oddling.errors import OddlingError
 from oddling.data.intake import IntakeError, display_path, load_rgb
+from oddling.jobs.common import supported_rate_text
 from oddling.reporting.results import ScoreRow, sort_rows, write_text
+
+def _asset(name: str) -> str:
+    """The page's CSS and JavaScript live as package files beside this module (reporting/assets/)."""
+    from importlib import resources
+
+    return resources.files("oddling.reporting").joinpath("assets", name).read_text(encoding="utf-8")
+
 
 HISTOGRAM_FILE = "scores_histogram.png"
 ROC_FILE = "roc.png"
@@ -141,9 +149,22 @@ def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float
         anomalous = np.array([r.score for r in rows if r.label == 1])
         groups = [(f"scored, labelled normal (n={len(normal)})", normal, _BATCH_COLOUR),
                   (f"scored, labelled anomalous (n={len(anomalous)})", anomalous, _ANOMALY_COLOUR)]
+    # Bins cover the calibration scores (and the cutoff) with room to spare; far outliers of the
+    # batch go into one overflow bin at the right, so they cannot squash the calibration scores
+    # into a single bar.
     everything = np.concatenate([cal] + [g[1] for g in groups])
     everything = everything[np.isfinite(everything)]
-    bins = np.histogram_bin_edges(everything, bins=min(50, max(10, int(np.sqrt(len(everything))))))
+    finite_cal = cal[np.isfinite(cal)]
+    anchor = np.concatenate([finite_cal, [cutoff] if math.isfinite(cutoff) else []]) if len(finite_cal) else everything
+    low, high = float(min(anchor.min(), everything.min())), float(anchor.max())
+    span = max(high - float(anchor.min()), 1e-9)
+    top = high + 0.5 * span
+    n_bins = min(50, max(10, int(np.sqrt(len(everything)))))
+    bins = np.linspace(low, top, n_bins + 1)
+    overflow = int((everything > top).sum())
+    if overflow:
+        bins = np.append(bins, top + (bins[1] - bins[0]))
+        groups = [(label, np.minimum(values, bins[-1] - 1e-12), colour) for label, values, colour in groups]
     fig, ax = plt.subplots(figsize=(7.5, 4.4))
     try:
         ax.hist(cal, bins=bins, density=True, histtype="stepfilled", color=_CAL_COLOUR, alpha=0.35,
@@ -159,6 +180,10 @@ def plot_score_histogram(calibration_scores, rows: list[ScoreRow], cutoff: float
             ax.set_title("Scores (no usable cutoff: the bank is too small for this false-alarm rate)")
         ax.set_xlabel(textwrap.fill(f"score: {score_text} (higher = more anomalous)", 100), fontsize=8)
         ax.set_ylabel("density")
+        if overflow:
+            ax.axvspan(bins[-2], bins[-1], color="#999999", alpha=0.15, lw=0)
+            ax.annotate(f"{overflow} above {top:.3g}", xy=(bins[-2], 1.0), xycoords=("data", "axes fraction"),
+                        ha="right", va="top", fontsize=7)
         ax.grid(True, alpha=0.3)
         ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.2), ncol=2, fontsize=8, frameon=False)
         fig.tight_layout()
@@ -284,7 +309,8 @@ class _Page:
     def render(self) -> str:
         gallery = self._gallery()   # first: it collects the reference thumbnails for the data block
         data = {"runId": run_id(self.bank, self.scored_root, self.rows), "storagePrefix": STORAGE_PREFIX,
-                "refs": self.ref_uris, "decisions": list(DECISIONS)}
+                "refs": self.ref_uris, "decisions": list(DECISIONS),
+                "scoredFolder": display_path(str(Path(self.scored_root).resolve()))}
         return "\n".join([
             "<!DOCTYPE html>",
             '<html lang="en">',
@@ -329,6 +355,7 @@ class _Page:
             ("Files", (f"{len(self.rows)} found, {len(self.scored)} scored, <strong>{flagged} flagged</strong>, "
                        f"{len(self.unreadable)} not scored")),
             ("Flag rule", cutoff),
+            ("Supported rates", _e(supported_rate_text(len(b.calibration_scores)))),
             ("Bank", f"<code>{_path(b.path) if b.path else '(not saved)'}</code>"),
             ("Representation", f"<code>{_e(b.representation.get('id', '?'))}</code>"),
             ("Detector", (f"<code>{_e(b.detector.name)}</code> {_e(_params_text(b.detector.get_params()))}: "
@@ -412,21 +439,26 @@ class _Page:
         )
 
     def _gallery(self) -> str:
-        n, total = len(self.shown), len(self.scored)
-        more = total - n
-        line = (f"showing {n} of {total} scored images; {more} more not shown"
-                + (" (all rows are in the scores CSV; filters apply to the images shown)" if more else ""))
         cards = "".join(self._card(rank, row) for rank, row in enumerate(self.shown, 1))
         return (
             '<section id="gallery"><h2>Ranked images</h2>'
-            f'<p class="shown-line" id="shown-line">{_e(line)}</p>'
             f"{self._controls()}"
-            '<div class="toolbar"><p id="match-count" aria-live="polite"></p>'
+            f'<div class="toolbar"><p id="match-count" aria-live="polite" data-scored="{len(self.scored)}">'
+            f"{_e(self._counter_text())}</p>"
             '<button type="button" id="export">Export decisions (CSV)</button></div>'
             '<p id="storage-note" class="note" hidden>This browser does not let the page keep decisions; '
             "export them before closing the page.</p>"
             f'<ol class="cards" id="cards">{cards}</ol></section>'
         )
+
+    def _counter_text(self) -> str:
+        """The counter before any filter (the page's script keeps it up to date, in the same words)."""
+        n, total = len(self.shown), len(self.scored)
+        if n == 0:
+            return "No scored images to show."
+        more = (f"; this page holds the top {n} of {total} scored images (every row is in the scores CSV)"
+                if total > n else "")
+        return f"All {n} cards shown{more}."
 
     def _ref_id(self, path: Path) -> str | None:
         uri = self.thumbs.get(path)
@@ -465,9 +497,11 @@ class _Page:
             rid = self._ref_id(Path(self.bank.reference_root) / ref)
             picture = (f'<img src="{_BLANK}" data-ref="{rid}" alt="{_path(ref_name)}">' if rid
                        else '<span class="refmissing">not found</span>')
-            refs.append(f'<li title="{_path(ref)}">{picture}<span class="dist">{_num(dist)}</span></li>')
+            refs.append(f'<li title="{_path(ref)}">{picture}<span class="refname">{_path(ref_name)}</span>'
+                        f'<span class="dist">{_num(dist)}</span></li>')
         buttons = "".join(f'<button type="button" class="mark mark-{d}" data-decision="{d}" aria-pressed="false">'
                           f"{d}</button>" for d in DECISIONS)
+        buttons += '<button type="button" class="mark mark-clear plain" data-decision="">clear</button>'
         return (
             f'<li class="card{" is-flagged" if row.flagged else ""}" data-path="{_path(row.path)}" '
             f'data-score="{row.score!r}" data-flagged="{"1" if row.flagged else "0"}" data-kind="{_path(kind)}">'
@@ -492,212 +526,16 @@ class _Page:
         return (f'<section id="unreadable"><h2>Files not scored ({len(self.unreadable)})</h2>{body}</section>')
 
 
-_CSS = """
-:root{--paper:#f3f1ec;--card:#fff;--ink:#1d2433;--muted:#5b6475;--line:#d8d3c8;--accent:#17607a;
---alarm:#b3261e;--unsure:#9a5b00;--ok:#1f7a4d;font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif}
-*{box-sizing:border-box}
-body{margin:0;background:var(--paper);color:var(--ink);line-height:1.45}
-main,.masthead,footer{max-width:1280px;margin:0 auto;padding:0 20px}
-h1{font-size:1.6rem;margin:.2rem 0 1rem}h2{font-size:1.2rem;margin:2rem 0 .8rem;padding-bottom:.3rem;
-border-bottom:2px solid var(--line)}
-code{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.85em;word-break:break-all}
-.masthead{padding-top:24px}
-.eyebrow{margin:0;text-transform:uppercase;letter-spacing:.08em;font-size:.75rem;color:var(--accent);font-weight:600}
-.facts,.metrics{display:grid;grid-template-columns:repeat(auto-fill,minmax(260px,1fr));gap:10px 24px;margin:0;
-background:var(--card);border:1px solid var(--line);border-left:6px solid var(--accent);border-radius:8px;padding:14px 18px}
-.facts dt,.metrics dt{font-size:.75rem;text-transform:uppercase;letter-spacing:.05em;color:var(--muted)}
-.facts dd,.metrics dd{margin:0}
-figure{margin:0;background:var(--card);border:1px solid var(--line);border-radius:8px;padding:10px}
-figure img{display:block;width:100%;height:auto}
-figcaption{font-size:.85rem;color:var(--muted);margin-top:6px}
-.figures{display:grid;grid-template-columns:repeat(auto-fit,minmax(280px,420px));gap:16px;margin-top:16px}
-table{border-collapse:collapse;background:var(--card);font-size:.9rem}
-th,td{border:1px solid var(--line);padding:4px 10px;text-align:left}td.num{text-align:right;font-variant-numeric:tabular-nums}
-.table-title{font-size:.85rem;color:var(--muted);margin:14px 0 4px}
-#distribution figure{max-width:860px}
-.shown-line{font-weight:600}
-.controls{display:flex;flex-wrap:wrap;gap:10px 18px;align-items:end;background:var(--card);
-border:1px solid var(--line);border-radius:8px;padding:10px 14px}
-.controls label{display:flex;flex-direction:column;font-size:.8rem;color:var(--muted);gap:2px}
-.controls label.check{flex-direction:row;align-items:center;gap:6px;font-size:.95rem;color:var(--ink);align-self:center}
-.controls input[type=number]{width:7em}
-input,select,button{font:inherit;font-size:.9rem}
-select,input[type=number]{padding:4px 6px;border:1px solid var(--line);border-radius:5px;background:#fff;color:var(--ink)}
-button{cursor:pointer;border-radius:999px;border:1px solid var(--accent);background:#fff;color:var(--accent);padding:4px 14px}
-button:hover{background:#e7f0f3}button.plain{border-color:var(--line);color:var(--muted)}
-button:focus-visible,input:focus-visible,select:focus-visible{outline:3px solid #f2b84b;outline-offset:1px}
-.toolbar{display:flex;justify-content:space-between;align-items:center;gap:12px;flex-wrap:wrap;margin:10px 0}
-.toolbar p{margin:0;color:var(--muted)}
-#export{background:var(--accent);color:#fff}
-.note{background:#fff4d6;border:1px solid #e6c46a;padding:6px 10px;border-radius:6px}
-.cards{list-style:none;padding:0;margin:0;display:grid;grid-template-columns:repeat(auto-fill,minmax(340px,1fr));gap:14px}
-.card{background:var(--card);border:1px solid var(--line);border-top:5px solid var(--line);border-radius:8px;
-padding:12px;display:flex;flex-direction:column;gap:8px}
-.card[hidden]{display:none}
-.card.is-flagged{border-top-color:var(--alarm)}
-.card-top{display:flex;gap:12px}
-.thumb{width:160px;height:160px;flex:none;object-fit:contain;background:#e9e6df;border-radius:4px}
-.thumb.missing{display:flex;align-items:center;justify-content:center;text-align:center;font-size:.8rem;color:var(--muted)}
-.card-info{min-width:0;flex:1}
-.rank{margin:0;font-size:.8rem;color:var(--muted)}
-.name{margin:0 0 4px;font-size:1rem;overflow-wrap:anywhere}
-.path{margin:0 0 6px;font-size:.75rem;color:var(--muted);overflow-wrap:anywhere}
-.badge{display:inline-block;font-size:.75rem;font-weight:700;text-transform:uppercase;letter-spacing:.06em;
-border-radius:4px;padding:2px 8px}
-.badge.flagged{background:var(--alarm);color:#fff}
-.badge.calm{border:1px solid var(--line);color:var(--muted)}
-.numbers{margin:8px 0 0;display:grid;grid-template-columns:auto auto;gap:2px 12px;font-size:.9rem}
-.numbers div{display:contents}.numbers dt{color:var(--muted)}.numbers dd{margin:0;font-variant-numeric:tabular-nums}
-.truth-1{color:var(--alarm);font-weight:600}.truth-0{color:var(--ok);font-weight:600}
-.refs-title{margin:0;font-size:.75rem;color:var(--muted)}
-.heatmap{width:160px;height:160px;object-fit:contain;border-radius:4px;display:block}
-.refs{list-style:none;margin:0;padding:0;display:flex;gap:6px;overflow-x:auto}
-.refs li{display:flex;flex-direction:column;align-items:center;font-size:.75rem;font-variant-numeric:tabular-nums}
-.refs img{width:60px;height:60px;object-fit:contain;background:#e9e6df;border-radius:3px}
-.refmissing{width:60px;height:60px;display:flex;align-items:center;text-align:center;font-size:.7rem;color:var(--muted);
-background:#e9e6df;border-radius:3px}
-.decide{display:flex;gap:6px;flex-wrap:wrap}
-.mark[aria-pressed=true]{color:#fff}
-.mark-normal{border-color:var(--ok);color:var(--ok)}.mark-normal[aria-pressed=true]{background:var(--ok)}
-.mark-anomalous{border-color:var(--alarm);color:var(--alarm)}.mark-anomalous[aria-pressed=true]{background:var(--alarm)}
-.mark-unsure{border-color:var(--unsure);color:var(--unsure)}.mark-unsure[aria-pressed=true]{background:var(--unsure)}
-.decision-state{margin:0;font-size:.85rem;color:var(--muted)}
-.card[data-decision]:not([data-decision=""]) .decision-state{color:var(--ink);font-weight:600}
-.caution{margin-top:2.5rem;padding-top:12px;padding-bottom:28px;border-top:2px solid var(--line)}
-.caution p:first-child{background:var(--card);border:1px solid var(--line);border-radius:8px;padding:10px 14px}
-.small{font-size:.8rem;color:var(--muted)}
-@media (max-width:600px){
-main,.masthead,footer{padding:0 10px}h1{font-size:1.3rem}
-.cards{grid-template-columns:1fr}
-.thumb{width:120px;height:120px}
-.controls input[type=number]{width:6em}
-}
-"""
+_CSS = _asset("page.css")
+
 
 # The decisions export's cell functions (also run on their own by tests/test_hostile.py).
 # csvText is results.csv_text for a path already in display form (data-path holds
 # display_path); results.path_from_cell reads an exported path back.
-CSV_CELLS_JS = r"""
-  // OWASP "CSV Injection": a cell starting with = + - @ TAB or CR (after any single quotes) gets
-  // one more leading single quote, so a spreadsheet shows it as text instead of running it.
-  var FORMULA_START = /^'*[=+\-@\t\r]/;
-  function csvText(text) { return FORMULA_START.test(text) ? "'" + text : text; }
-  function csvField(text) {
-    return /[",\r\n]|^\s|\s$/.test(text) ? '"' + text.replace(/"/g, '""') + '"' : text;
-  }
-"""
+CSV_CELLS_JS = _asset("csv_cells.js")
 
-_JS = r"""
-(function () {
-  "use strict";
-  var data = JSON.parse(document.getElementById("oddling-data").textContent);
-  var storeKey = data.storagePrefix + data.runId;
-  var list = document.getElementById("cards");
-  var cards = Array.prototype.slice.call(list.children);
-  var $ = function (id) { return document.getElementById(id); };
 
-  // Reference thumbnails are stored once in the data block and shared by every card showing them.
-  Array.prototype.forEach.call(document.querySelectorAll("img[data-ref]"), function (img) {
-    var src = data.refs[img.getAttribute("data-ref")];
-    if (src) { img.src = src; }
-  });
+_JS = _asset("page.js").replace("/*CSV_CELLS*/", CSV_CELLS_JS)
 
-  var marks = {};
-  function storageFailed() { $("storage-note").hidden = false; }
-  try { marks = JSON.parse(window.localStorage.getItem(storeKey) || "{}") || {}; } catch (e) { storageFailed(); }
-  function save() {
-    try { window.localStorage.setItem(storeKey, JSON.stringify(marks)); } catch (e) { storageFailed(); }
-  }
-
-  function showMark(card) {
-    var decision = marks[card.getAttribute("data-path")] || "";
-    card.setAttribute("data-decision", decision);
-    Array.prototype.forEach.call(card.querySelectorAll(".mark"), function (b) {
-      b.setAttribute("aria-pressed", String(b.getAttribute("data-decision") === decision));
-    });
-    card.querySelector(".decision-state").textContent = decision ? "Decision: " + decision : "No decision yet";
-  }
-
-  list.addEventListener("click", function (event) {
-    var button = event.target.closest(".mark");
-    if (!button) { return; }
-    var card = button.closest(".card");
-    var path = card.getAttribute("data-path");
-    var decision = button.getAttribute("data-decision");
-    if (marks[path] === decision) { delete marks[path]; } else { marks[path] = decision; }   // second click clears
-    save();
-    showMark(card);
-    apply();
-  });
-
-/*CSV_CELLS*/
-  function decisionsCsv() {
-    var lines = ["path,decision"];
-    cards.forEach(function (card) {   // in rank order, as on the page
-      var path = card.getAttribute("data-path");
-      if (marks[path]) { lines.push(csvField(csvText(path)) + "," + marks[path]); }
-    });
-    return lines.join("\n") + "\n";
-  }
-  window.oddlingDecisionsCsv = decisionsCsv;   // for tests and for copying from the console
-
-  $("export").addEventListener("click", function () {
-    var url = URL.createObjectURL(new Blob([decisionsCsv()], {type: "text/csv"}));
-    var link = document.createElement("a");
-    link.href = url;
-    link.download = "decisions-" + data.runId + ".csv";
-    document.body.appendChild(link);
-    link.click();
-    document.body.removeChild(link);
-    setTimeout(function () { URL.revokeObjectURL(url); }, 1000);
-  });
-
-  var rankOrder = cards.slice();
-  function number(id) {
-    var input = $(id);
-    var value = input.value === "" ? NaN : Number(input.value);
-    return isFinite(value) ? value : null;
-  }
-  function apply() {
-    var flaggedOnly = $("f-flagged").checked;
-    var kind = $("f-kind") ? $("f-kind").value : "";
-    var decision = $("f-decision").value;
-    var low = number("f-min"), high = number("f-max");
-    var order = $("f-sort").value;
-    var sorted = rankOrder.slice();
-    if (order === "score-asc") { sorted.reverse(); }
-    if (order === "name") {
-      sorted.sort(function (a, b) {
-        var x = a.getAttribute("data-path"), y = b.getAttribute("data-path");
-        return x < y ? -1 : x > y ? 1 : 0;
-      });
-    }
-    var shown = 0;
-    sorted.forEach(function (card) {
-      var score = Number(card.getAttribute("data-score"));
-      var mark = marks[card.getAttribute("data-path")] || "(none)";
-      var ok = (!flaggedOnly || card.getAttribute("data-flagged") === "1")
-        && (!kind || card.getAttribute("data-kind") === kind)
-        && (!decision || mark === decision)
-        && (low === null || score >= low) && (high === null || score <= high);
-      card.hidden = !ok;
-      if (ok) { shown += 1; }
-      list.appendChild(card);
-    });
-    cards = sorted;
-    $("match-count").textContent = shown === rankOrder.length
-      ? "All " + shown + " cards shown."
-      : shown + " of " + rankOrder.length + " cards match the filters.";
-  }
-  var controls = $("controls");
-  controls.addEventListener("input", apply);
-  controls.addEventListener("change", apply);
-  controls.addEventListener("submit", function (event) { event.preventDefault(); });
-  controls.addEventListener("reset", function () { setTimeout(apply, 0); });
-
-  rankOrder.forEach(showMark);
-  apply();
-}());
-""".replace("/*CSV_CELLS*/", CSV_CELLS_JS.lstrip("\n"))
 
 __all__ = ["CAUTION", "plot_score_histogram", "plots_folder", "run_id", "thumbnail_uri", "write_report"]
