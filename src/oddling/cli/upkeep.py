@@ -10,7 +10,9 @@ from oddling import api
 from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
                                 target_fpr_override, user_errors)
 from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
+from oddling.data.intake import display_path
+from oddling.jobs.common import plural, refuse_existing
+from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 
 @click.command()
 @click.argument("incoming_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
@@ -119,32 +121,33 @@ def bank_info(bank_path, as_json):
 def bank_add(bank_path, source, root, **run):
     """Add SOURCE to BANK: a folder of normal images, or a report's decisions CSV (rows marked normal)."""
     result = api.bank_add(bank_path, source, root=root, options=_options(**run))
-    click.echo(f"Added {result['added']} references ({result['already_in_bank']} already in the bank, "
-               f"{len(result['skipped'])} unreadable); the bank now holds {result['n_references']}.", err=True)
+    click.echo(f"Added {plural(result['added'], 'reference')} ({result['already_in_bank']} already in the bank, "
+               f"{len(result['skipped'])} unreadable); the bank now holds "
+               f"{plural(result['n_references'], 'reference')}.", err=True)
 
 
 @bank_group.command("remove")
 @click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
 @click.argument("items", nargs=-1, required=True)
-@click.option("--kind", "kinds", multiple=True,
-              type=click.Choice(["outlier", "duplicate", "near_duplicate", "health"]),
-              help="With an audit JSON: remove only findings of this kind (repeatable) [default: all].")
+@click.option("--kind", "kinds", multiple=True, type=click.Choice(AUDIT_KINDS),
+              help="With an audit JSON: remove the findings of this kind (repeatable).")
+@click.option("--all", "everything", is_flag=True, help="With an audit JSON: remove every finding.")
+@click.option("--dry-run", is_flag=True, help="Print what would be removed and change nothing.")
 @user_errors
-def bank_remove(bank_path, items, kinds):
-    """Remove references from BANK: their paths as `bank info`/`audit` show them, or an audit JSON file."""
-    paths = []
-    for item in items:
-        if item.endswith(".json") and Path(item).is_file():
-            try:
-                findings = json.loads(Path(item).read_text(encoding="utf-8"))["findings"]
-            except (ValueError, KeyError) as exc:
-                raise OddlingError(f"{item} is not an audit JSON (from `oddling audit --json`)") from exc
-            paths += [f["path"] for f in findings if not kinds or f["kind"] in kinds]
-        else:
-            paths.append(item)
-    result = api.bank_remove(bank_path, paths)
-    click.echo(f"Removed {result['removed']} references; the bank now holds {result['n_references']}.", err=True)
-    for missing in result["not_found"][:10]:
-        click.echo(f"  not in the bank: {missing}", err=True)
+def bank_remove(bank_path, items, kinds, everything, dry_run):
+    """Remove references from BANK: their paths as `bank info`/`audit` show them, or an audit JSON file
+    with --kind or --all. What goes is listed first."""
+    targets = removal_targets(list(items), tuple(kinds), everything)
 
+    def show(going):
+        click.echo(f"{'Would remove' if dry_run else 'Removing'} {plural(len(going), 'reference')}:", err=True)
+        for path in going:
+            click.echo(f"  {display_path(path)}  ({', '.join(targets[path])})", err=True)
 
+    result = api.bank_remove(bank_path, list(targets), dry_run=dry_run, before=show)
+    if dry_run:
+        click.echo(f"Dry run: nothing changed; the bank would hold {plural(result['n_references'], 'reference')}.",
+                   err=True)
+    else:
+        click.echo(f"Removed {plural(result['removed'], 'reference')}; the bank now holds "
+                   f"{plural(result['n_references'], 'reference')}.", err=True)

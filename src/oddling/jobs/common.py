@@ -47,6 +47,11 @@ def refuse_existing(*paths, force: bool) -> None:
             raise OddlingError(f"{path} already exists; pass --force to replace it")
 
 
+def plural(n: int, word: str, many: str | None = None) -> str:
+    """"1 reference", "2 references": the count with the word in the right number."""
+    return f"{n} {word if n == 1 else (many or word + 's')}"
+
+
 def supported_rate_text(n: int) -> str:
     """What a calibration set of n scores can do, in words people can act on."""
     lowest = smallest_supported_rate(n)

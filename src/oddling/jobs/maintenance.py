@@ -13,7 +13,7 @@ from oddling.data.intake import discover
 from oddling.detectors.conformal import smallest_supported_rate
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, embed_paths, load_bank_representation, supported_rate_text
+from oddling.jobs.common import RunOptions, embed_paths, load_bank_representation, plural, supported_rate_text
 from oddling.jobs.fitting import calibration_record, fences_from_table
 from oddling.jobs.scoring import as_bank
 
@@ -114,18 +114,85 @@ def bank_add(
     return {"added": len(added), "already_in_bank": duplicates, "skipped": skipped, "n_references": bank.size}
 
 
-def bank_remove(bank_path: str | os.PathLike, paths: list[str]) -> dict:
-    """Remove references by their bank path (as `bank info` / `audit` print them); refit and recalibrate."""
+AUDIT_KINDS = ("outlier", "duplicate", "near_duplicate", "health")
+NAMED = "named"   # the reason of a reference named on the command line rather than found by an audit
+
+
+def removal_targets(items: list[str], kinds: tuple[str, ...] = (), everything: bool = False) -> dict[str, list[str]]:
+    """What `bank remove ITEMS` means: {reference path: [why: audit kinds, or "named"]}, in the order given.
+
+    An item ending in .json that is a file is an audit JSON (`oddling audit --json`); from it only
+    the findings of `kinds` are taken, or all of them with `everything`, and one of the two must
+    be asked for: an audit usually lists more than a user means to remove. Any other item is a
+    reference path as `bank info` / `audit` print it.
+    """
+    import json
+
+    targets: dict[str, list[str]] = {}
+    audits = 0
+    for item in items:
+        if item.endswith(".json") and Path(item).is_file():
+            audits += 1
+            try:
+                findings = json.loads(Path(item).read_text(encoding="utf-8"))["findings"]
+                pairs = [(f["path"], f["kind"]) for f in findings]
+            except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError) as exc:
+                raise OddlingError(f"{item} is not an audit JSON (from `oddling audit --json`)") from exc
+            if not kinds and not everything:
+                counts = {k: sum(kind == k for _, kind in pairs) for k in dict.fromkeys(kind for _, kind in pairs)}
+                listed = ", ".join(f"{n} {k}" for k, n in counts.items())
+                raise OddlingError(
+                    f"{item} lists {plural(len(pairs), 'finding')}" + (f" ({listed})" if listed else "")
+                    + ": say which to remove with --kind KIND (repeatable) or --all; --dry-run shows the list first")
+            for path, kind in pairs:
+                if everything or kind in kinds:
+                    targets.setdefault(path, [])
+                    if kind not in targets[path]:
+                        targets[path].append(kind)
+        else:
+            targets.setdefault(item, [])
+            if NAMED not in targets[item]:
+                targets[item].append(NAMED)
+    if (kinds or everything) and not audits:
+        raise OddlingError("--kind and --all choose findings of an audit JSON (`oddling audit --json`); "
+                           "name references by their paths without them")
+    return targets
+
+
+def bank_remove(bank_path: str | os.PathLike, paths: list[str], *, dry_run: bool = False,
+                before=None) -> dict:
+    """Remove references by their bank path (as `bank info` / `audit` print them); refit and recalibrate.
+
+    Every path must name a reference of the bank: otherwise OddlingError naming those that do not,
+    and nothing is changed. `before(paths)` (if given) is called with the references that will
+    go, in bank order, before any work: the CLI prints them. The detector is then fitted on what
+    is left; if it cannot be (too few references), OddlingError saying so, and nothing is changed.
+    With `dry_run` the refit is tried but the bank is not replaced.
+    """
     bank = load_bank(bank_path)
     require_features(bank, "bank remove")
     wanted = set(paths)
+    present = {r["path"] for r in bank.references}
+    not_found = [p for p in dict.fromkeys(paths) if p not in present]
+    if not_found or not wanted:
+        shown = ", ".join(not_found[:5]) + (f", and {len(not_found) - 5} more" if len(not_found) > 5 else "")
+        raise OddlingError(
+            (f"{plural(len(not_found), 'path')} not in bank {bank_path}: {shown}" if not_found
+             else "nothing to remove") + "; nothing was changed (`oddling bank info` and `oddling audit` "
+            "show reference paths, relative to the reference folder)")
+    going = [r["path"] for r in bank.references if r["path"] in wanted]
+    if before is not None:
+        before(going)
     keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
-    found = {bank.references[i]["path"] for i in range(bank.size)} & wanted
-    not_found = sorted(wanted - found)
-    if found:
+    try:
         refit(bank, [bank.references[i] for i in keep], bank.features[keep], bank.health_stats[keep])
+    except OddlingError as exc:
+        raise OddlingError(f"removing {plural(len(going), 'reference')} would leave {len(keep)}, too few for "
+                           f"the {bank.detector.name} detector ({exc}); nothing was changed") from exc
+    if not dry_run:
         save_bank(bank, bank_path, force=True)
-    return {"removed": len(found), "not_found": not_found, "n_references": bank.size}
+    return {"removed": 0 if dry_run else len(going), "paths": going, "not_found": [], "n_references": bank.size,
+            "dry_run": dry_run}
 
 
 def bank_info(bank_path: str | os.PathLike) -> dict:
