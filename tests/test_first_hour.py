@@ -90,3 +90,65 @@ def test_kind_without_an_audit_json_is_an_error(bank_copy):
     refs = [r["path"] for r in oddling.load_bank(bank_copy).references]
     result = run("bank", "remove", bank_copy, refs[0], "--kind", "outlier")
     assert result.exit_code == 2 and "audit JSON" in result.stderr
+
+
+# 2. output paths: checked before any work, parents created, never a traceback
+
+def _write_history(bank_path, n=3):
+    lines = []
+    for i in range(n):
+        lines.append(json.dumps({"time": f"2024-03-0{i + 1}T01:34:00+00:00", "shift": i == n - 1, "batch": f"b{i}",
+                                 "flagged_share": 0.01 * (i + 1), "expected_share": 0.01, "mmd": 0.02 * (i + 1),
+                                 "mmd_p_value": 0.5 / (i + 1)}))
+    (bank_path / "drift_history.jsonl").write_text("\n".join(lines) + "\n")
+
+
+def test_drift_plot_into_a_new_folder_creates_it(bank_copy, tmp_path):
+    _write_history(bank_copy)
+    target = tmp_path / "new" / "deeper" / "x.png"
+    result = run("drift", "--history", bank_copy, "--plot", target)
+    assert result.exit_code == 0, result.output
+    assert target.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert str(target) in result.stderr
+
+
+def test_drift_plot_needs_a_png_name(bank_copy, tmp_path):
+    _write_history(bank_copy)
+    result = run("drift", "--history", bank_copy, "--plot", tmp_path / "d.txt")
+    assert result.exit_code == 2 and ".png" in result.stderr and "Traceback" not in result.output
+    assert not (tmp_path / "d.txt").exists()
+
+
+def test_drift_plot_into_an_existing_folder_is_refused_with_a_file_to_use(bank_copy, tmp_path):
+    _write_history(bank_copy)
+    (tmp_path / "plots").mkdir()
+    result = run("drift", "--history", bank_copy, "--plot", f"{tmp_path / 'plots'}/")
+    assert result.exit_code == 2
+    assert "is a folder" in result.stderr and str(tmp_path / "plots" / "drift_history.png") in result.stderr
+
+
+def test_plot_without_history_is_a_usage_error(bank_copy, tmp_path):
+    result = run("drift", tmp_path, "--bank", bank_copy, "--plot", tmp_path / "x.png")
+    assert result.exit_code == 2 and "--history" in result.output
+
+
+def test_score_out_checks_share_the_helper(digits_bank, tmp_path):
+    (tmp_path / "out").mkdir()
+    result = run("score", tmp_path, "--bank", digits_bank.path, "--out", tmp_path / "out", "-q")
+    assert result.exit_code == 2 and str(tmp_path / "out" / "scores.csv") in result.stderr
+    (tmp_path / "file").write_text("x")
+    result = run("report", tmp_path, "--bank", digits_bank.path, "--out", tmp_path / "file" / "r.html", "-q")
+    assert result.exit_code == 2 and "is a file, not a folder" in result.stderr
+
+
+def test_check_output_rules(tmp_path):
+    from oddling.jobs.common import check_output
+
+    assert check_output(None, force=False) is None
+    assert check_output(tmp_path / "a" / "b.png", force=False, suffix=".png") == tmp_path / "a" / "b.png"
+    (tmp_path / "c.png").write_bytes(b"x")
+    with pytest.raises(oddling.OddlingError, match="already exists; pass --force"):
+        check_output(tmp_path / "c.png", force=False, suffix=".png")
+    assert check_output(tmp_path / "c.png", force=True, suffix=".PNG".lower()) == tmp_path / "c.png"
+    with pytest.raises(oddling.OddlingError, match="ending in .png"):
+        check_output(tmp_path / "c", force=True, suffix=".png")

@@ -13,7 +13,7 @@ from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
 from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
                                 target_fpr_override, user_errors)
 from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
+from oddling.jobs.common import check_output, refuse_existing
 
 
 def parse_params(pairs: tuple[str, ...]) -> dict:
@@ -102,12 +102,12 @@ def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset
 @click.command()
 @click.argument("incoming_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
 @bank_option
-@click.option("--out", "out_csv", required=True, type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--out", "out_csv", required=True, type=click.Path(path_type=Path),
               help="CSV to write, one row per file, highest score first.")
 @target_fpr_override
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
 @click.option("--fail-on-flagged", is_flag=True, help="Exit 1 when any image is flagged.")
-@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+@click.option("--report", "report_path", type=click.Path(path_type=Path), default=None,
               help="Also write the review page (self-contained HTML) here.")
 @click.option("--maps", "maps_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
               help="Local-mode banks: write a heatmap overlay PNG per image into this folder.")
@@ -117,7 +117,8 @@ def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset
 def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, maps_dir, force,
           **run):
     """Score every image in INCOMING_DIR against a bank."""
-    refuse_existing(out_csv, report_path, force=force)
+    check_output(out_csv, force=force, option="--out", example="scores.csv")
+    check_output(report_path, force=force, option="--report", example="report.html")
     result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, options=_options(**run))
     result.write_csv(out_csv, force=True)
     summary = result.summary() | {"out": str(out_csv)}
@@ -152,7 +153,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
               help="F-beta weight for the best-cutoff search; beta > 1 weighs recall more.")
 @target_fpr_override
 @click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
-@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+@click.option("--report", "report_path", type=click.Path(path_type=Path), default=None,
               help="Also write the review page (self-contained HTML) here.")
 @click.option("--force", is_flag=True, help="Overwrite earlier results in --out-dir.")
 @run_options
@@ -160,7 +161,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
 def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, report_path,
              force, **run):
     """Measure the detector on TEST_DIR, a folder of labelled images."""
-    refuse_existing(report_path, force=force)
+    check_output(report_path, force=force, option="--report", example="report.html")
     result = api.evaluate(test_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                           beta=beta, target_fpr=target_fpr, options=_options(**run))
     paths = result.write(out_dir, force=force)
@@ -191,7 +192,7 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
 @click.command()
 @click.argument("folder", type=click.Path(exists=True, file_okay=False, path_type=Path))
 @bank_option
-@click.option("--out", "out_html", required=True, type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--out", "out_html", required=True, type=click.Path(path_type=Path),
               help="HTML file to write; plots go to a sibling folder <name>_plots/.")
 @click.option("--labelled", is_flag=True,
               help="FOLDER is a labelled test folder (class subfolders, or --labels): show labels and metrics.")
@@ -209,7 +210,7 @@ def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top
     """Write the review page for FOLDER scored against a bank (cached embeddings make this quick)."""
     from oddling.reporting.page import write_report
 
-    refuse_existing(out_html, force=force)
+    check_output(out_html, force=force, option="--out", example="report.html")
     options = _options(**run)
     if labelled or labels_csv:
         result = api.evaluate(folder, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),

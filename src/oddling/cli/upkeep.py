@@ -11,7 +11,7 @@ from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, ban
                                 target_fpr_override, user_errors)
 from oddling.errors import OddlingError
 from oddling.data.intake import display_path
-from oddling.jobs.common import plural, refuse_existing
+from oddling.jobs.common import check_output, plural
 from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 
 @click.command()
@@ -20,7 +20,7 @@ from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
               help="Bank to compare the batch with.")
 @click.option("--history", "history_bank", type=click.Path(exists=True, file_okay=False, path_type=Path),
               help="Instead of testing a batch: read this bank's history of checks (with --plot).")
-@click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--plot", "plot_path", type=click.Path(path_type=Path),
               help="With --history: draw flagged share and MMD over time into this PNG.")
 @click.option("--permutations", type=click.IntRange(min=19), default=500, show_default=True,
               help="Permutations for the MMD p-value.")
@@ -31,7 +31,10 @@ from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 @user_errors
 def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, as_json, fail_on_shift, **run):
     """Test whether the batch INCOMING_DIR as a whole has shifted away from the bank."""
+    if plot_path is not None and history_bank is None:
+        raise click.UsageError("--plot draws the history of checks: give it with --history BANK")
     if history_bank is not None:
+        check_output(plot_path, force=True, suffix=".png", option="--plot", example="drift_history.png")
         entries = api.drift_history(history_bank)
         if plot_path is not None:
             from oddling.reporting.plots import plot_drift_history

@@ -84,6 +84,7 @@ def plot_drift_history(entries: list[dict], expected_share: float, path: str | o
     fig.autofmt_xdate()
     fig.tight_layout()
     out = Path(path)
+    out.parent.mkdir(parents=True, exist_ok=True)   # as the CSV writer does: --plot new/folder/x.png works
     fig.savefig(out)
     plt.close(fig)
     return out
