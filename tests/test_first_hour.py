@@ -152,3 +152,60 @@ def test_check_output_rules(tmp_path):
     assert check_output(tmp_path / "c.png", force=True, suffix=".PNG".lower()) == tmp_path / "c.png"
     with pytest.raises(oddling.OddlingError, match="ending in .png"):
         check_output(tmp_path / "c", force=True, suffix=".png")
+
+
+# 4. nothing to do is an error, unless a pipeline asks for --allow-empty
+
+@pytest.fixture()
+def texts(tmp_path):
+    folder = tmp_path / "texts"
+    folder.mkdir()
+    for name in ("a.txt", "b.txt"):
+        (folder / name).write_text("not an image")
+    (folder / "empty.png").write_bytes(b"")
+    return folder
+
+
+def test_score_without_images_is_an_error_saying_what_was_there(digits_bank, texts, tmp_path):
+    out = tmp_path / "s.csv"
+    result = run("score", texts, "--bank", digits_bank.path, "--out", out, "-q")
+    assert result.exit_code == 2
+    assert f"no images found in {texts} (3 files skipped: " in result.stderr
+    assert '2 "skipped: not an image file type (.txt)"' in result.stderr
+    assert '1 "unreadable: empty file (0 bytes)"' in result.stderr
+    assert not out.exists()
+    (tmp_path / "empty").mkdir()
+    (tmp_path / "empty" / ".hidden.png").write_bytes(b"x")
+    result = run("score", tmp_path / "empty", "--bank", digits_bank.path, "--out", out, "-q")
+    assert result.exit_code == 2 and "(no files; left out: 1 hidden)" in result.stderr
+
+
+def test_allow_empty_writes_the_header_and_the_skipped_rows(digits_bank, texts, tmp_path):
+    out = tmp_path / "s.csv"
+    result = run("score", texts, "--bank", digits_bank.path, "--out", out, "-q", "--allow-empty")
+    assert result.exit_code == 0, result.output
+    lines = out.read_text().splitlines()
+    assert lines[0].startswith("path,score,p_value,flagged")
+    assert sorted(line.split(",")[0] for line in lines[1:]) == ["a.txt", "b.txt", "empty.png"]
+    assert "Scored 0 of 3 files" in result.stderr
+
+
+def test_report_without_images_writes_no_page(digits_bank, texts, tmp_path):
+    result = run("report", texts, "--bank", digits_bank.path, "--out", tmp_path / "r.html", "-q")
+    assert result.exit_code == 2 and "no images found" in result.stderr
+    assert not (tmp_path / "r.html").exists()
+
+
+def test_bank_add_uses_the_same_status_words(bank_copy, texts, digits_folders):
+    before = (bank_copy / "bank.json").read_bytes()
+    result = run("bank", "add", bank_copy, texts, "-q")
+    assert result.exit_code == 2 and "no images found" in result.stderr and "nothing was added" in result.stderr
+    assert '"skipped: not an image file type (.txt)"' in result.stderr
+    assert (bank_copy / "bank.json").read_bytes() == before
+    shutil.copy(next(digits_folders["incoming"].glob("*.png")), texts / "new.png")
+    result = run("bank", "add", bank_copy, texts, "-q")
+    assert result.exit_code == 0, result.output
+    assert "Added 1 reference (0 already in the bank)" in result.stderr
+    assert "3 files unreadable or skipped:" in result.stderr
+    assert "a.txt: skipped: not an image file type (.txt)" in result.stderr
+    assert "empty.png: unreadable: empty file (0 bytes)" in result.stderr

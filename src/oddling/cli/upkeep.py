@@ -40,7 +40,7 @@ def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, 
             from oddling.reporting.plots import plot_drift_history
 
             plot_drift_history(entries, entries[-1]["expected_share"], plot_path)
-            click.echo(f"{len(entries)} checks drawn in {plot_path}", err=True)
+            click.echo(f"{plural(len(entries), 'check')} drawn in {plot_path}", err=True)
         if as_json:
             _print_json({"history": entries})
         elif plot_path is None:
@@ -81,7 +81,7 @@ def audit(bank_path, as_json, near_duplicate_factor, max_hash_bits):
         return
     findings = result["findings"]
     if not findings:
-        click.echo(f"No findings among {result['n_references']} references.")
+        click.echo(f"No findings among {plural(result['n_references'], 'reference')}.")
     for f in findings:
         click.echo(f"{f['kind']:15s} {f['path']}: {f['detail']}")
 
@@ -108,7 +108,7 @@ def bank_info(bank_path, as_json):
         f"bank {info['path']} (format {info['format_version']}, made {info['created']} by oddling {info['tool_version']})\n"
         f"  representation {info['representation']['id']}"
         + (f" (weights SHA-256 {weights[:16]}...)" if weights else "") + "\n"
-        f"  references {info['n_references']} from {info['reference_root']} ({info['n_skipped']} files skipped)\n"
+        f"  references {info['n_references']} from {info['reference_root']} ({plural(info['n_skipped'], 'file')} skipped)\n"
         f"  detector   {det['name']} {det['params']}: {det['score']}\n"
         f"  calibration {cal['method']}; {cal['n']} scores; cutoff {_num(cal['cutoff'], 4)} at target false-alarm "
         f"rate {cal['target_fpr']}\n  {info['supported_rates']}")
@@ -124,9 +124,14 @@ def bank_info(bank_path, as_json):
 def bank_add(bank_path, source, root, **run):
     """Add SOURCE to BANK: a folder of normal images, or a report's decisions CSV (rows marked normal)."""
     result = api.bank_add(bank_path, source, root=root, options=_options(**run))
-    click.echo(f"Added {plural(result['added'], 'reference')} ({result['already_in_bank']} already in the bank, "
-               f"{len(result['skipped'])} unreadable); the bank now holds "
-               f"{plural(result['n_references'], 'reference')}.", err=True)
+    click.echo(f"Added {plural(result['added'], 'reference')} ({result['already_in_bank']} already in the bank); "
+               f"the bank now holds {plural(result['n_references'], 'reference')}.", err=True)
+    if result["skipped"]:
+        click.echo(f"{plural(len(result['skipped']), 'file')} unreadable or skipped:", err=True)
+        for item in result["skipped"][:10]:
+            click.echo(f"  {display_path(item['path'])}: {item['status']}", err=True)
+        if len(result["skipped"]) > 10:
+            click.echo(f"  and {len(result['skipped']) - 10} more", err=True)
 
 
 @bank_group.command("remove")

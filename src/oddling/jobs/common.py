@@ -119,14 +119,44 @@ def embed_paths(base: Path, paths: list[Path], representation, options: RunOptio
                        progress=options.progress, desc=desc, cache=cache)
 
 
-def embed_folder(root: Path, representation, options: RunOptions, desc: str, exclude: tuple[Path, ...] = ()):
-    from oddling.data.intake import IntakeError, discover
+def skipped_text(records, limit: int = 3) -> str:
+    """The files that were not used, counted by status in the runner's and intake's own words (the
+    CSV's status column): '2 "skipped: not an image file type (.txt)"; 1 "unreadable: empty file (0 bytes)"'."""
+    from collections import Counter
+
+    from oddling.embedding.runner import OK
+
+    counts = Counter(r.status for r in records if r.status != OK).most_common()
+    text = "; ".join(f'{n} "{status}"' for status, n in counts[:limit])
+    return text + (f"; and {plural(len(counts) - limit, 'other status', 'other statuses')}" if len(counts) > limit
+                   else "")
+
+
+def no_images_message(root, records, left_out: dict | None = None) -> str:
+    """"no images found in X (N files skipped: ...)": what a folder without one usable image held."""
+    from oddling.embedding.runner import OK
+
+    unused = [r for r in records if r.status != OK]
+    parts = [f"{plural(len(unused), 'file')} skipped: {skipped_text(unused)}" if unused else "no files"]
+    if left_out:
+        parts.append("left out: " + ", ".join(f"{n} {kind}" for kind, n in sorted(left_out.items())))
+    return f"no images found in {root} ({'; '.join(parts)})"
+
+
+def embed_folder(root: Path, representation, options: RunOptions, desc: str, exclude: tuple[Path, ...] = (),
+                 allow_empty: bool = False):
+    """embed_paths over every file under `root`. A folder without one usable image is an OddlingError
+    (no_images_message) unless `allow_empty`: then every file still has its record."""
+    from oddling.data.intake import IntakeError, walk
 
     try:
-        paths = discover(root, exclude=exclude)
+        found = walk(root, exclude=exclude)
     except IntakeError as exc:
         raise OddlingError(exc.status) from exc
-    return embed_paths(root, paths, representation, options, desc)
+    embedded = embed_paths(root, found.paths, representation, options, desc)
+    if not embedded.ok_records and not allow_empty:
+        raise OddlingError(no_images_message(root, embedded.records, found.left_out))
+    return embedded
 
 
 def load_bank_representation(bank, options: RunOptions):

@@ -15,7 +15,8 @@ from oddling.detectors import DEFAULT_DETECTOR, make_detector
 from oddling.detectors.conformal import ConformalThreshold
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, refuse_existing, warn_if_few_calibration
+from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, no_images_message, refuse_existing,
+                                 warn_if_few_calibration)
 from oddling.numbers import json_number
 
 DEFAULT_REPRESENTATION = "efficientnet-lite0"
@@ -64,9 +65,7 @@ def build_bank(embedded, representation, detector, target_fpr: float, reference_
     """Fit the detector on embedded references and assemble the bank (not saved)."""
     usable = embedded.ok_records
     if not usable:
-        skipped = [r for r in embedded.records if r.status != OK]
-        detail = f" (first skipped: {skipped[0].path}: {skipped[0].status})" if skipped else ""
-        raise OddlingError(f"{reference_dir} has no usable images{detail}")
+        raise OddlingError(no_images_message(reference_dir, embedded.records))
     hashes = np.array([r.sha256 for r in usable])
     detector.fit(embedded.embeddings, hashes)
     return Bank(

@@ -9,11 +9,12 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import Bank, load_bank, save_bank
-from oddling.data.intake import discover
+from oddling.data.intake import walk
 from oddling.detectors.conformal import smallest_supported_rate
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, embed_paths, load_bank_representation, plural, supported_rate_text
+from oddling.jobs.common import (RunOptions, embed_paths, load_bank_representation, no_images_message, plural,
+                                 supported_rate_text)
 from oddling.jobs.fitting import calibration_record, fences_from_table
 from oddling.jobs.scoring import as_bank
 
@@ -86,16 +87,23 @@ def bank_add(
     require_features(bank, "bank add")
     source = Path(source)
     rep = load_bank_representation(bank, options)
+    left_out = None
     if source.is_dir():
-        base, paths = source, discover(source, exclude=(Path(bank_path),))
+        found = walk(source, exclude=(Path(bank_path),))
+        base, paths, left_out = source, found.paths, found.left_out
     elif source.is_file() and source.suffix.lower() == ".csv":
         paths = _read_decisions(source, Path(root) if root else None)
-        base = Path(os.path.commonpath([p.resolve().parent for p in paths])) if paths else source.parent
+        if not paths:
+            raise OddlingError(f"{source} marks no file normal; nothing to add (the decision column says "
+                               "normal for the images to add)")
+        base = Path(os.path.commonpath([p.resolve().parent for p in paths]))
         paths = [p.resolve() for p in paths]
     else:
         raise OddlingError(f"{source} is neither a folder nor a decisions CSV")
     known = {r["sha256"] for r in bank.references}
     embedded = embed_paths(base, paths, rep, options, "embedding new references")
+    if not embedded.ok_records:
+        raise OddlingError(no_images_message(source, embedded.records, left_out) + "; nothing was added")
     ref_root = Path(bank.reference_root)
     added, duplicates = [], 0
     vectors, stats = [bank.features], [bank.health_stats]

@@ -132,13 +132,16 @@ def score(
     *,
     target_fpr: float | None = None,
     backbone: str | None = None,
+    allow_empty: bool = False,
     options: RunOptions | None = None,
 ) -> ScoreResult:
     """Score every file under `incoming_dir` against the bank.
 
     score = the bank's detector score (higher = more anomalous; `bank.detector.describe_score()`
     says what it measures); p_value = conformal p-value against the bank's calibration scores;
-    flagged = p_value <= target_fpr (the bank's rate unless overridden).
+    flagged = p_value <= target_fpr (the bank's rate unless overridden). A folder without one
+    usable image is an OddlingError ("no images found in ...") unless `allow_empty` (for
+    pipelines: then the rows say why each file has no score).
     """
     options = options or RunOptions()
     incoming_dir = folder(incoming_dir, "incoming folder")
@@ -151,6 +154,6 @@ def score(
                            "scores from different backbones cannot be compared")
     rep = load_bank_representation(bank, options)
     exclude = (bank.path,) if bank.path else ()
-    embedded = embed_folder(incoming_dir, rep, options, "scoring", exclude)
+    embedded = embed_folder(incoming_dir, rep, options, "scoring", exclude, allow_empty=allow_empty)
     rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
     return ScoreResult(sort_rows(rows), bank, target_fpr or bank.target_fpr, cutoff, incoming_dir)
