@@ -209,3 +209,51 @@ def test_bank_add_uses_the_same_status_words(bank_copy, texts, digits_folders):
     assert "3 files unreadable or skipped:" in result.stderr
     assert "a.txt: skipped: not an image file type (.txt)" in result.stderr
     assert "empty.png: unreadable: empty file (0 bytes)" in result.stderr
+
+
+# 5. labels: what a labels CSV or the class folders leave out is said on stderr
+
+@pytest.fixture()
+def flat_test(digits_folders, tmp_path):
+    folder = tmp_path / "flat"
+    folder.mkdir()
+    rows = ["path,label"]
+    for p in sorted((digits_folders["test"] / "normal").glob("*.png"))[:10]:
+        shutil.copy(p, folder / p.name)
+        rows.append(f"{p.name},normal")
+    for p in sorted((digits_folders["test"] / "digit7").glob("*.png")):
+        shutil.copy(p, folder / f"seven_{p.name}")
+        rows.append(f"seven_{p.name},anomaly")
+    shutil.copy(p, folder / "extra.png")          # a file with no row
+    rows.append("ghost.png,anomaly")              # a row with no file
+    labels = tmp_path / "labels.csv"
+    labels.write_text("\n".join(rows) + "\n")
+    return folder, labels
+
+
+def test_evaluate_says_which_labels_and_files_were_left_out(digits_bank, flat_test, tmp_path):
+    folder, labels = flat_test
+    result = run("evaluate", folder, "--bank", digits_bank.path, "--labels", labels, "--out-dir", tmp_path / "e", "-q")
+    assert result.exit_code == 0, result.output
+    assert "warning: 1 file labelled in the CSV but not found in the test folder: ghost.png" in result.stderr
+    assert "warning: 1 file found in the test folder but not in the labels CSV (not counted): extra.png" in result.stderr
+    metrics = json.loads((tmp_path / "e" / "metrics.json").read_text())
+    assert metrics["labels_without_file"] == ["ghost.png"] and metrics["unlabelled"] == ["extra.png"]
+    assert metrics["n_normal"] == 10 and metrics["n_anomalous"] == 8
+
+
+def test_evaluate_names_top_level_files_without_a_class_folder(digits_bank, digits_folders, tmp_path):
+    folder = tmp_path / "test"
+    shutil.copytree(digits_folders["test"], folder)
+    shutil.copy(next((folder / "normal").glob("*.png")), folder / "stray.png")
+    result = oddling.evaluate(folder, digits_bank, options=QUIET)
+    assert len(result.notes) == 1 and "stray.png" in result.notes[0] and "no label" in result.notes[0]
+
+
+def test_labels_that_match_nothing_say_why_in_the_error(digits_bank, flat_test, tmp_path):
+    folder, _ = flat_test
+    wrong = tmp_path / "wrong.csv"
+    wrong.write_text("path,label\n" + "".join(f"flat/{p.name},normal\n" for p in sorted(folder.glob("*.png"))))
+    result = run("evaluate", folder, "--bank", digits_bank.path, "--labels", wrong, "--out-dir", tmp_path / "e", "-q")
+    assert result.exit_code == 2
+    assert "both classes" in result.stderr and "not found in the test folder: flat/" in result.stderr

@@ -168,6 +168,8 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
     result = api.evaluate(test_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                           beta=beta, target_fpr=target_fpr, options=_options(**run))
     paths = result.write(out_dir, force=force)
+    for note in result.notes:
+        click.echo(f"warning: {note}", err=True)
     if report_path is not None:
         from oddling.reporting.page import write_report
 
@@ -221,6 +223,8 @@ def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top
     if labelled or labels_csv:
         result = api.evaluate(folder, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                               target_fpr=target_fpr, options=options)
+        for note in result.notes:
+            click.echo(f"warning: {note}", err=True)
         path = write_report(out_html, result, bank=result.bank, scored_root=folder, top_n=top_n, force=True)
     else:
         result = api.score(folder, bank_path, target_fpr=target_fpr, allow_empty=allow_empty, options=options)
