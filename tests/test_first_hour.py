@@ -257,3 +257,51 @@ def test_labels_that_match_nothing_say_why_in_the_error(digits_bank, flat_test, 
     result = run("evaluate", folder, "--bank", digits_bank.path, "--labels", wrong, "--out-dir", tmp_path / "e", "-q")
     assert result.exit_code == 2
     assert "both classes" in result.stderr and "not found in the test folder: flat/" in result.stderr
+
+
+# 6. messages: what the CLI says is true and in CLI words
+
+def test_no_user_message_speaks_python_force_true():
+    """Error and warning texts are read on the command line: "pass --force", never "force=True"."""
+    import ast
+    from pathlib import Path
+
+    src = Path(oddling.__file__).parent
+    offenders = []
+    for path in sorted(src.rglob("*.py")):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if not isinstance(node, ast.Call):
+                continue
+            name = getattr(node.func, "id", None) or getattr(node.func, "attr", "")
+            if name not in ("OddlingError", "warn", "UsageError", "echo"):
+                continue
+            texts = [n.value for arg in node.args for n in ast.walk(arg)
+                     if isinstance(n, ast.Constant) and isinstance(n.value, str)]
+            if any("force=True" in t for t in texts):
+                offenders.append(f"{path.relative_to(src)}:{node.lineno}")
+    assert offenders == []
+
+
+@pytest.mark.parametrize("command", ["fit", "score", "report"])
+def test_readme_names_every_option_of_the_command(command):
+    """README's section of the command (or the shared options table) names each of its options."""
+    import re
+    from pathlib import Path
+
+    readme = (Path(__file__).parents[1] / "README.md").read_text(encoding="utf-8")
+    shared = readme[readme.index("Options shared by"):readme.index("Embeddings are cached")]
+    section = re.search(rf"### `oddling {command} .*?(?=\n### )", readme, re.S).group(0)
+    options = [o for p in main.commands[command].params for o in getattr(p, "opts", []) if o.startswith("--")]
+    assert [o for o in options if o not in section and o not in shared] == []
+
+
+def test_fit_json_prints_a_summary_on_stdout(digits_folders, tmp_path):
+    refs = tmp_path / "refs"
+    refs.mkdir()
+    for p in sorted(digits_folders["reference"].glob("*.png"))[:20]:
+        shutil.copy(p, refs / p.name)
+    result = run("fit", refs, "--bank", tmp_path / "b", "--json", "-q", "--target-fpr", "0.1")
+    assert result.exit_code == 0, result.output
+    summary = json.loads(result.stdout)
+    assert summary["n_references"] == 20 and summary["n_skipped"] == 0
+    assert summary["detector"]["name"] == "knn"
