@@ -305,3 +305,31 @@ def test_fit_json_prints_a_summary_on_stdout(digits_folders, tmp_path):
     summary = json.loads(result.stdout)
     assert summary["n_references"] == 20 and summary["n_skipped"] == 0
     assert summary["detector"]["name"] == "knn"
+
+
+# 7. the drift plot: a legend that covers nothing, dates that read as dates
+
+def _entries(n=6):
+    return [{"time": f"2024-03-02T0{i}:34:00+00:00", "shift": i % 2 == 1, "flagged_share": 0.9 - 0.1 * i,
+             "expected_share": 0.01, "mmd": 0.3 - 0.02 * i} for i in range(n)]
+
+
+def test_drift_plot_uses_concise_dates_and_keeps_the_legend_off_the_markers(tmp_path):
+    import matplotlib.dates as mdates
+
+    from oddling.reporting.plots import drift_history_figure, plot_drift_history
+
+    entries = _entries()
+    fig = drift_history_figure(entries, 0.01)
+    fig.canvas.draw()
+    for ax in fig.axes:
+        assert isinstance(ax.xaxis.get_major_formatter(), mdates.ConciseDateFormatter)
+        legend = ax.get_legend().get_window_extent()
+        for collection in ax.collections:          # the shift markers
+            for x, y in ax.transData.transform(collection.get_offsets()):
+                assert not legend.contains(x, y)
+        assert not legend.overlaps(ax.get_window_extent())   # outside the axes altogether
+    # the first markers of the top panel sit in its upper left, where the legend used to be
+    assert fig.axes[0].collections[0].get_offsets().shape[0] == 3
+    out = plot_drift_history(entries, 0.01, tmp_path / "new" / "drift.png")
+    assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
