@@ -333,3 +333,66 @@ def test_drift_plot_uses_concise_dates_and_keeps_the_legend_off_the_markers(tmp_
     assert fig.axes[0].collections[0].get_offsets().shape[0] == 3
     out = plot_drift_history(entries, 0.01, tmp_path / "new" / "drift.png")
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+# 3. a cache folder that cannot be written: an existing export is read, else PyTorch with a warning
+
+@pytest.fixture()
+def unusable_cache(tmp_path):
+    """A cache folder below a regular file: nobody can create it, root included (as with /proc/x)."""
+    (tmp_path / "a_file").write_text("x")
+    return tmp_path / "a_file" / "cache"
+
+
+@pytest.mark.parametrize("no_cache", [False, True])
+def test_score_with_an_unusable_cache_folder_falls_back_with_a_warning(digits_bank, digits_folders, unusable_cache,
+                                                                       tmp_path, no_cache):
+    pytest.importorskip("onnxruntime")
+    out = tmp_path / "s.csv"
+    result = run("score", digits_folders["incoming"], "--bank", digits_bank.path, "--out", out, "-q",
+                 "--cache-dir", unusable_cache, *(["--no-cache"] if no_cache else []))
+    assert result.exit_code == 0, result.output
+    assert "warning: cannot write the ONNX export into" in result.stderr
+    assert "running with PyTorch instead" in result.stderr and "--cache-dir with a writable folder" in result.stderr
+    assert ("embedding cache" in result.stderr) is not no_cache
+    n = len(list(digits_folders["incoming"].iterdir()))
+    assert f"Scored {n} of {n} files" in result.stderr
+
+
+def test_runtime_onnx_with_an_unusable_cache_folder_is_a_clear_error(digits_bank, digits_folders, unusable_cache,
+                                                                     tmp_path):
+    pytest.importorskip("onnxruntime")
+    result = run("score", digits_folders["incoming"], "--bank", digits_bank.path, "--out", tmp_path / "s.csv",
+                 "-q", "--no-cache", "--cache-dir", unusable_cache, "--runtime", "onnx")
+    assert result.exit_code == 2
+    assert "runtime 'onnx': cannot write the ONNX export" in result.stderr and "--runtime torch" in result.stderr
+
+
+def test_an_existing_verified_export_is_only_read(private_cache, digits_bank, tmp_path, monkeypatch):
+    pytest.importorskip("onnxruntime")
+    from oddling.backbones import load_backbone, onnx_runtime
+
+    shutil.copytree(private_cache / "onnx", tmp_path / "cache" / "onnx")   # the fit of digits_bank exported it
+    assert list((tmp_path / "cache" / "onnx").glob("*.verified.json"))
+
+    def refuse(*args, **kwargs):
+        raise PermissionError(13, "Permission denied")   # what a read-only folder answers
+
+    monkeypatch.setattr(onnx_runtime, "export", refuse)
+    assert load_backbone("efficientnet-lite0", tmp_path / "cache", runtime="auto").runtime == "onnx"
+    with pytest.warns(oddling.OddlingWarning, match="Permission denied.*PyTorch instead"):
+        net = load_backbone("efficientnet-lite0", tmp_path / "empty_cache", runtime="auto")
+    assert net.runtime == "torch"
+
+
+def test_a_verification_that_cannot_be_recorded_still_counts(private_cache, tmp_path, capsys):
+    pytest.importorskip("onnxruntime")
+    import numpy as np
+
+    from oddling.backbones import load_backbone
+
+    net = load_backbone("efficientnet-lite0", tmp_path / "cache", runtime="onnx")
+    net.onnx.verified, net.onnx.verified_file = False, tmp_path / "a_file_that_is" / "missing" / "x.verified.json"
+    batch = np.random.default_rng(0).normal(size=(2, 3, 224, 224)).astype(np.float32)
+    net.embed(batch)
+    assert net.onnx.verified and "not recorded" in capsys.readouterr().err

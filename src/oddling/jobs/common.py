@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import math
 import os
+import tempfile
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -113,8 +114,16 @@ def embed_paths(base: Path, paths: list[Path], representation, options: RunOptio
 
     cache = None
     if options.use_cache and representation.cacheable:
-        cache = EmbeddingCache.open(cache_dir(options.cache_dir), representation.cache_fingerprint(),
-                                    representation.runtime)
+        folder = cache_dir(options.cache_dir)
+        try:
+            cache = EmbeddingCache.open(folder, representation.cache_fingerprint(), representation.runtime)
+            with tempfile.TemporaryFile(dir=cache.folder):   # it saves as the run goes: it must be writable
+                pass
+        except OSError as exc:
+            cache = None
+            warnings.warn(f"the embedding cache in {folder} is not usable ({exc.strerror or exc}): running "
+                          "without it (nothing is reused or saved); pass --cache-dir with a writable folder, "
+                          "or --no-cache to say so", OddlingWarning, stacklevel=3)
     return embed_files(base, paths, representation, batch_size=options.batch_size, workers=options.workers,
                        progress=options.progress, desc=desc, cache=cache)
 
