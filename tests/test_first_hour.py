@@ -396,3 +396,82 @@ def test_a_verification_that_cannot_be_recorded_still_counts(private_cache, tmp_
     batch = np.random.default_rng(0).normal(size=(2, 3, 224, 224)).astype(np.float32)
     net.embed(batch)
     assert net.onnx.verified and "not recorded" in capsys.readouterr().err
+
+
+# 8. the encoding trap: references and batch from different pipelines
+
+def test_bank_records_formats_and_score_warns_about_another_encoding(digits_bank, digits_folders, tmp_path):
+    from PIL import Image
+
+    meta = json.loads((digits_bank.path / "bank.json").read_text())
+    assert meta["formats"] == {"PNG": 100} and digits_bank.formats == {"PNG": 100}
+    assert {r["format"] for r in meta["references"]} == {"PNG"}
+    jpegs = tmp_path / "jpegs"
+    jpegs.mkdir()
+    for p in sorted(digits_folders["incoming"].glob("*.png"))[:12]:
+        Image.open(p).convert("RGB").save(jpegs / f"{p.stem}.jpg", quality=90)
+    result = run("score", jpegs, "--bank", digits_bank.path, "--out", tmp_path / "s.csv", "-q")
+    assert result.exit_code == 0, result.output
+    assert ("warning: references are PNG; 12 of 12 scored images are JPEG: fit on images from the same pipeline"
+            in result.stderr)
+    result = run("score", digits_folders["incoming"], "--bank", digits_bank.path, "--out", tmp_path / "t.csv", "-q")
+    assert "same pipeline" not in result.stderr                   # same encoding: nothing to say
+
+
+def test_banks_without_formats_still_load_and_do_not_warn(digits_bank, digits_folders, tmp_path, recwarn):
+    copy = tmp_path / "old.bank"
+    shutil.copytree(digits_bank.path, copy)
+    meta = json.loads((copy / "bank.json").read_text())
+    del meta["formats"]
+    for ref in meta["references"]:
+        ref.pop("format")
+    (copy / "bank.json").write_text(json.dumps(meta))
+    bank = oddling.load_bank(copy)
+    assert bank.formats == {}
+    from oddling.jobs.scoring import warn_about_encoding
+
+    warn_about_encoding(bank, digits_folders["incoming"], [])
+    assert not [w for w in recwarn if "pipeline" in str(w.message)]
+
+
+def test_adding_a_jpeg_updates_the_formats(bank_copy, digits_folders, tmp_path):
+    from PIL import Image
+
+    extra = tmp_path / "extra"
+    extra.mkdir()
+    source = next(digits_folders["incoming"].glob("*.png"))
+    Image.open(source).convert("RGB").save(extra / "new.jpg", quality=80)
+    oddling.bank_add(bank_copy, extra, options=QUIET)
+    formats = oddling.load_bank(bank_copy).formats
+    assert formats["PNG"] == 100 and formats["JPEG"] == 1 and formats["jpeg_quality"]["median"] in (79, 80, 81)
+    oddling.bank_remove(bank_copy, [r["path"] for r in oddling.load_bank(bank_copy).references if r["path"].endswith(".jpg")])
+    assert oddling.load_bank(bank_copy).formats == {"PNG": 100}
+
+
+@pytest.mark.parametrize("quality", [20, 50, 75, 90, 95])
+def test_jpeg_quality_estimate_from_pillows_own_encoder(tmp_path, quality):
+    """Pillow encodes with libjpeg's scaled standard tables: the estimate gives back the quality asked for."""
+    import numpy as np
+    from PIL import Image
+
+    from oddling.jobs.common import image_format
+
+    path = tmp_path / "x.jpg"
+    Image.fromarray((np.random.default_rng(0).random((32, 32, 3)) * 255).astype("uint8")).save(path, quality=quality)
+    fmt, estimate = image_format(path)
+    assert fmt == "JPEG" and abs(estimate - quality) <= 1
+
+
+def test_warn_if_other_encoding_rules():
+    import warnings
+
+    from oddling.jobs.common import warn_if_other_encoding
+
+    with pytest.warns(oddling.OddlingWarning, match="references are JPEG of quality about 95; the scored JPEGs about 50"):
+        warn_if_other_encoding({"JPEG": 40, "jpeg_quality": {"median": 95}}, {"JPEG": 5, "jpeg_quality": {"median": 50}})
+    with pytest.warns(oddling.OddlingWarning, match=r"references are PNG \(30\) and JPEG \(10\); 1 of 3 scored images is WEBP"):
+        warn_if_other_encoding({"PNG": 30, "JPEG": 10}, {"PNG": 2, "WEBP": 1})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        warn_if_other_encoding({"JPEG": 40, "jpeg_quality": {"median": 90}}, {"JPEG": 5, "jpeg_quality": {"median": 85}})
+        warn_if_other_encoding({}, {"JPEG": 5})

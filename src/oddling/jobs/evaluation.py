@@ -11,7 +11,7 @@ import numpy as np
 from oddling.bank.store import Bank
 from oddling.errors import OddlingError
 from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, load_bank_representation, plural
-from oddling.jobs.scoring import as_bank, rows_from_embedded
+from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
 from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows, write_text
 
 
@@ -123,6 +123,7 @@ def evaluate(
     rep = load_bank_representation(bank, options)
     embedded = embed_folder(test_dir, rep, options, "evaluating", (bank.path,) if bank.path else ())
     rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
+    warn_about_encoding(bank, test_dir, rows)
     gaps = attach_labels(rows, labels_csv, normal_labels)
     rows = sort_rows(rows)
     notes = label_notes(gaps, test_dir, labels_csv is not None)

@@ -15,7 +15,7 @@ from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.jobs.common import (RunOptions, embed_paths, load_bank_representation, no_images_message, plural,
                                  supported_rate_text)
-from oddling.jobs.fitting import calibration_record, fences_from_table
+from oddling.jobs.fitting import calibration_record, fences_from_table, reference_entry, references_formats
 from oddling.jobs.scoring import as_bank
 
 
@@ -35,6 +35,7 @@ def refit(bank: Bank, references: list[dict], features: np.ndarray, health: np.n
     bank.calibration_scores = np.asarray(detector.calibration_scores_, dtype=np.float64)
     bank.calibration = calibration_record(detector, bank.target_fpr)
     bank.health_fences = fences_from_table(health)
+    bank.formats = references_formats(references)
     return bank
 
 
@@ -112,7 +113,7 @@ def bank_add(
             duplicates += 1
             continue
         known.add(rec.sha256)
-        added.append({"path": _bank_relative(base / rec.path, ref_root), "sha256": rec.sha256})
+        added.append(reference_entry(_bank_relative(base / rec.path, ref_root), rec.sha256, base / rec.path))
         vectors.append(embedded.embeddings[rec.row:rec.row + 1])
         stats.append(embedded.health[rec.row:rec.row + 1])
     skipped = [{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK]
