@@ -120,15 +120,42 @@ def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None 
     if runtime == "onnx" and not onnx_runtime.available():
         raise OddlingError("runtime 'onnx' needs the onnxruntime package: pip install onnxruntime")
     folder = cache_dir(cache)
-    path, sha = resolve_weights(spec, folder)
+    try:
+        path, sha = resolve_weights(spec, folder)
+    except OSError as exc:   # e.g. pinning a new weight file's checksum in a read-only cache folder
+        raise OddlingError(f"cannot use the cache folder {folder} for backbone {spec.id!r} "
+                           f"({exc.strerror or exc}); pass --cache-dir with a writable folder") from exc
     network = FAMILIES[spec.family](spec, path)
     session = None
     if runtime == "onnx" or (runtime == "auto" and onnx_runtime.available()):
-        onnx_file = onnx_runtime.export_path(folder, spec.id, sha, spec.preprocessing.crop)
+        session = _onnx_session(network, spec, sha, folder, required=runtime == "onnx")
+    return Backbone(spec, sha, network, session)
+
+
+def _onnx_session(network, spec: BackboneSpec, sha: str, folder: Path, required: bool):
+    """The ONNX Runtime session, exporting first if the cache holds no export (an existing one is
+    only read). Where the export cannot be written or opened: OddlingError if ONNX was asked for
+    (`required`), else a warning that says why and how to fix it, and None (PyTorch runs instead)."""
+    onnx_file = onnx_runtime.export_path(folder, spec.id, sha, spec.preprocessing.crop)
+    try:
         if not onnx_file.is_file():
             onnx_runtime.export(network, spec.preprocessing.crop, onnx_file)
-        session = onnx_runtime.OnnxSession(onnx_file)
-    return Backbone(spec, sha, network, session)
+        return onnx_runtime.OnnxSession(onnx_file)
+    except OSError as exc:
+        reason = f"cannot write the ONNX export into {onnx_file.parent} ({exc.strerror or exc})"
+        fix = "pass --cache-dir with a writable folder"
+    except Exception as exc:   # onnxruntime's own errors for a damaged file (InvalidProtobuf, Fail, ...)
+        reason = f"cannot open the ONNX export {onnx_file} ({type(exc).__name__})"
+        fix = "delete that file to export it again"
+    if required:
+        raise OddlingError(f"runtime 'onnx': {reason}; {fix}, or use --runtime torch")
+    import warnings
+
+    from oddling.jobs.common import OddlingWarning
+
+    warnings.warn(f"{reason}: running with PyTorch instead (slower, same results); {fix} to use ONNX Runtime",
+                  OddlingWarning, stacklevel=3)
+    return None
 
 
 __all__ = ["RUNTIMES", "Backbone", "BackboneSpec", "DEFAULT_BACKBONE", "FAMILIES", "get_spec", "load_backbone", "load_manifest"]

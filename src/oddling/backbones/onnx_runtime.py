@@ -101,8 +101,12 @@ class OnnxSession:
             raise OddlingError(
                 f"ONNX export {self.path.name} disagrees with PyTorch (max abs diff {check['max_abs_diff']:.2e}, "
                 f"min cosine {check['min_cosine']:.6f}); export refused, use --runtime torch")
-        self.verified_file.write_text(json.dumps(check, indent=2) + "\n")
         self.verified = True
+        try:
+            self.verified_file.write_text(json.dumps(check, indent=2) + "\n")
+            recorded = ""
+        except OSError as exc:   # a read-only cache: the check holds for this run, and is made again next time
+            recorded = f"; not recorded, {self.verified_file.parent} is not writable ({exc.strerror or exc})"
         print(f"oddling: ONNX export verified against PyTorch on {check['n_images']} images "
-              f"(max abs diff {check['max_abs_diff']:.1e})", file=sys.stderr)
+              f"(max abs diff {check['max_abs_diff']:.1e}){recorded}", file=sys.stderr)
         return check

@@ -70,6 +70,7 @@ class Bank:
     health_stats: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
     health_fences: dict = field(default_factory=dict)
     skipped: list[dict] = field(default_factory=list)
+    formats: dict = field(default_factory=dict)   # optional: the references' file formats (jobs.common.format_summary)
     path: Path | None = None
     format_version: int = FORMAT_VERSION
 
@@ -105,6 +106,7 @@ class Bank:
             "n_references": self.size,
             "references": self.references,
             "skipped": self.skipped,
+            "formats": self.formats,
         }
 
 
@@ -247,6 +249,7 @@ def load_bank(path: str | os.PathLike) -> Bank:
         reference_root=f.get("reference_root", str), tool_version=f.get("tool_version", str),
         created=f.get("created", str), health_stats=health_stats, health_fences=health_fences,
         skipped=f.get("skipped", list, [], required=False), path=folder, format_version=version,
+        formats=f.get("formats", dict, {}, required=False),
     )
 
 

@@ -13,7 +13,7 @@ from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
 from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
                                 target_fpr_override, user_errors)
 from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
+from oddling.jobs.common import check_output, plural, refuse_existing
 
 
 def parse_params(pairs: tuple[str, ...]) -> dict:
@@ -88,13 +88,13 @@ def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset
     cutoff = bank.calibration["cutoff"]
     params = ", ".join(f"{key}={value}" for key, value in bank.detector.get_params().items())
     click.echo(
-        f"Bank written to {bank_path}: {bank.size} references, representation {bank.representation['id']}, "
+        f"Bank written to {bank_path}: {plural(bank.size, 'reference')}, representation {bank.representation['id']}, "
         f"detector {bank.detector.name} ({params}); cutoff "
         f"{'none (too few calibration scores)' if cutoff is None else _num(cutoff, 4)} at target false-alarm "
         f"rate {target_fpr}.\n  score: {bank.detector.describe_score()}\n  calibration: {bank.calibration['method']}; "
         f"{info['supported_rates']}.", err=True)
     if bank.skipped:
-        click.echo(f"{len(bank.skipped)} files skipped (listed in {bank_path}/bank.json):", err=True)
+        click.echo(f"{plural(len(bank.skipped), 'file')} skipped (listed in {bank_path}/bank.json):", err=True)
         for item in bank.skipped[:10]:
             click.echo(f"  {item['path']}: {item['status']}", err=True)
 
@@ -102,23 +102,27 @@ def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset
 @click.command()
 @click.argument("incoming_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
 @bank_option
-@click.option("--out", "out_csv", required=True, type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--out", "out_csv", required=True, type=click.Path(path_type=Path),
               help="CSV to write, one row per file, highest score first.")
 @target_fpr_override
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
 @click.option("--fail-on-flagged", is_flag=True, help="Exit 1 when any image is flagged.")
-@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+@click.option("--report", "report_path", type=click.Path(path_type=Path), default=None,
               help="Also write the review page (self-contained HTML) here.")
 @click.option("--maps", "maps_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
               help="Local-mode banks: write a heatmap overlay PNG per image into this folder.")
 @click.option("--force", is_flag=True, help="Overwrite existing output files.")
+@click.option("--allow-empty", is_flag=True,
+              help="A folder without one usable image is not an error (for pipelines): exit 0, rows say why.")
 @run_options
 @user_errors
 def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, maps_dir, force,
-          **run):
+          allow_empty, **run):
     """Score every image in INCOMING_DIR against a bank."""
-    refuse_existing(out_csv, report_path, force=force)
-    result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, options=_options(**run))
+    check_output(out_csv, force=force, option="--out", example="scores.csv")
+    check_output(report_path, force=force, option="--report", example="report.html")
+    result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, allow_empty=allow_empty,
+                       options=_options(**run))
     result.write_csv(out_csv, force=True)
     summary = result.summary() | {"out": str(out_csv)}
     if maps_dir is not None:
@@ -132,7 +136,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
         _print_json(summary)
     else:
         click.echo(
-            f"Scored {summary['n_scored']} of {summary['n_files']} files "
+            f"Scored {summary['n_scored']} of {plural(summary['n_files'], 'file')} "
             f"({summary['n_skipped']} unreadable or skipped); {summary['n_flagged']} flagged at "
             f"target false-alarm rate {summary['target_fpr']}. Results: {out_csv}", err=True)
     if fail_on_flagged and summary["n_flagged"]:
@@ -152,7 +156,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
               help="F-beta weight for the best-cutoff search; beta > 1 weighs recall more.")
 @target_fpr_override
 @click.option("--json", "as_json", is_flag=True, help="Print metrics.json to stdout.")
-@click.option("--report", "report_path", type=click.Path(dir_okay=False, path_type=Path), default=None,
+@click.option("--report", "report_path", type=click.Path(path_type=Path), default=None,
               help="Also write the review page (self-contained HTML) here.")
 @click.option("--force", is_flag=True, help="Overwrite earlier results in --out-dir.")
 @run_options
@@ -160,10 +164,12 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
 def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, report_path,
              force, **run):
     """Measure the detector on TEST_DIR, a folder of labelled images."""
-    refuse_existing(report_path, force=force)
+    check_output(report_path, force=force, option="--report", example="report.html")
     result = api.evaluate(test_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                           beta=beta, target_fpr=target_fpr, options=_options(**run))
     paths = result.write(out_dir, force=force)
+    for note in result.notes:
+        click.echo(f"warning: {note}", err=True)
     if report_path is not None:
         from oddling.reporting.page import write_report
 
@@ -185,13 +191,13 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
                        f"({m.get('auroc_ci_method', '')}) is wide; label more images before trusting these figures.",
                        err=True)
         if m["unreadable"]:
-            click.echo(f"{len(m['unreadable'])} unreadable files listed in metrics.json (not counted).", err=True)
+            click.echo(f"{plural(len(m['unreadable']), 'unreadable file')} listed in metrics.json (not counted).", err=True)
 
 
 @click.command()
 @click.argument("folder", type=click.Path(exists=True, file_okay=False, path_type=Path))
 @bank_option
-@click.option("--out", "out_html", required=True, type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--out", "out_html", required=True, type=click.Path(path_type=Path),
               help="HTML file to write; plots go to a sibling folder <name>_plots/.")
 @click.option("--labelled", is_flag=True,
               help="FOLDER is a labelled test folder (class subfolders, or --labels): show labels and metrics.")
@@ -203,20 +209,25 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
               help="Cards shown in the gallery, highest scores first.")
 @target_fpr_override
 @click.option("--force", is_flag=True, help="Overwrite an existing page.")
+@click.option("--allow-empty", is_flag=True,
+              help="A folder without one usable image is not an error (for pipelines): exit 0, rows say why.")
 @run_options
 @user_errors
-def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top_n, target_fpr, force, **run):
+def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top_n, target_fpr, force, allow_empty,
+           **run):
     """Write the review page for FOLDER scored against a bank (cached embeddings make this quick)."""
     from oddling.reporting.page import write_report
 
-    refuse_existing(out_html, force=force)
+    check_output(out_html, force=force, option="--out", example="report.html")
     options = _options(**run)
     if labelled or labels_csv:
         result = api.evaluate(folder, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                               target_fpr=target_fpr, options=options)
+        for note in result.notes:
+            click.echo(f"warning: {note}", err=True)
         path = write_report(out_html, result, bank=result.bank, scored_root=folder, top_n=top_n, force=True)
     else:
-        result = api.score(folder, bank_path, target_fpr=target_fpr, options=options)
+        result = api.score(folder, bank_path, target_fpr=target_fpr, allow_empty=allow_empty, options=options)
         path = write_report(out_html, result, top_n=top_n, force=True)
     click.echo(f"Review page: {path}", err=True)
 

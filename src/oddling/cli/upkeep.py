@@ -10,7 +10,9 @@ from oddling import api
 from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
                                 target_fpr_override, user_errors)
 from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
+from oddling.data.intake import display_path
+from oddling.jobs.common import check_output, plural
+from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 
 @click.command()
 @click.argument("incoming_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
@@ -18,7 +20,7 @@ from oddling.jobs.common import refuse_existing
               help="Bank to compare the batch with.")
 @click.option("--history", "history_bank", type=click.Path(exists=True, file_okay=False, path_type=Path),
               help="Instead of testing a batch: read this bank's history of checks (with --plot).")
-@click.option("--plot", "plot_path", type=click.Path(dir_okay=False, path_type=Path),
+@click.option("--plot", "plot_path", type=click.Path(path_type=Path),
               help="With --history: draw flagged share and MMD over time into this PNG.")
 @click.option("--permutations", type=click.IntRange(min=19), default=500, show_default=True,
               help="Permutations for the MMD p-value.")
@@ -29,13 +31,16 @@ from oddling.jobs.common import refuse_existing
 @user_errors
 def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, as_json, fail_on_shift, **run):
     """Test whether the batch INCOMING_DIR as a whole has shifted away from the bank."""
+    if plot_path is not None and history_bank is None:
+        raise click.UsageError("--plot draws the history of checks: give it with --history BANK")
     if history_bank is not None:
+        check_output(plot_path, force=True, suffix=".png", option="--plot", example="drift_history.png")
         entries = api.drift_history(history_bank)
         if plot_path is not None:
             from oddling.reporting.plots import plot_drift_history
 
             plot_drift_history(entries, entries[-1]["expected_share"], plot_path)
-            click.echo(f"{len(entries)} checks drawn in {plot_path}", err=True)
+            click.echo(f"{plural(len(entries), 'check')} drawn in {plot_path}", err=True)
         if as_json:
             _print_json({"history": entries})
         elif plot_path is None:
@@ -76,7 +81,7 @@ def audit(bank_path, as_json, near_duplicate_factor, max_hash_bits):
         return
     findings = result["findings"]
     if not findings:
-        click.echo(f"No findings among {result['n_references']} references.")
+        click.echo(f"No findings among {plural(result['n_references'], 'reference')}.")
     for f in findings:
         click.echo(f"{f['kind']:15s} {f['path']}: {f['detail']}")
 
@@ -103,7 +108,7 @@ def bank_info(bank_path, as_json):
         f"bank {info['path']} (format {info['format_version']}, made {info['created']} by oddling {info['tool_version']})\n"
         f"  representation {info['representation']['id']}"
         + (f" (weights SHA-256 {weights[:16]}...)" if weights else "") + "\n"
-        f"  references {info['n_references']} from {info['reference_root']} ({info['n_skipped']} files skipped)\n"
+        f"  references {info['n_references']} from {info['reference_root']} ({plural(info['n_skipped'], 'file')} skipped)\n"
         f"  detector   {det['name']} {det['params']}: {det['score']}\n"
         f"  calibration {cal['method']}; {cal['n']} scores; cutoff {_num(cal['cutoff'], 4)} at target false-alarm "
         f"rate {cal['target_fpr']}\n  {info['supported_rates']}")
@@ -119,32 +124,38 @@ def bank_info(bank_path, as_json):
 def bank_add(bank_path, source, root, **run):
     """Add SOURCE to BANK: a folder of normal images, or a report's decisions CSV (rows marked normal)."""
     result = api.bank_add(bank_path, source, root=root, options=_options(**run))
-    click.echo(f"Added {result['added']} references ({result['already_in_bank']} already in the bank, "
-               f"{len(result['skipped'])} unreadable); the bank now holds {result['n_references']}.", err=True)
+    click.echo(f"Added {plural(result['added'], 'reference')} ({result['already_in_bank']} already in the bank); "
+               f"the bank now holds {plural(result['n_references'], 'reference')}.", err=True)
+    if result["skipped"]:
+        click.echo(f"{plural(len(result['skipped']), 'file')} unreadable or skipped:", err=True)
+        for item in result["skipped"][:10]:
+            click.echo(f"  {display_path(item['path'])}: {item['status']}", err=True)
+        if len(result["skipped"]) > 10:
+            click.echo(f"  and {len(result['skipped']) - 10} more", err=True)
 
 
 @bank_group.command("remove")
 @click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
 @click.argument("items", nargs=-1, required=True)
-@click.option("--kind", "kinds", multiple=True,
-              type=click.Choice(["outlier", "duplicate", "near_duplicate", "health"]),
-              help="With an audit JSON: remove only findings of this kind (repeatable) [default: all].")
+@click.option("--kind", "kinds", multiple=True, type=click.Choice(AUDIT_KINDS),
+              help="With an audit JSON: remove the findings of this kind (repeatable).")
+@click.option("--all", "everything", is_flag=True, help="With an audit JSON: remove every finding.")
+@click.option("--dry-run", is_flag=True, help="Print what would be removed and change nothing.")
 @user_errors
-def bank_remove(bank_path, items, kinds):
-    """Remove references from BANK: their paths as `bank info`/`audit` show them, or an audit JSON file."""
-    paths = []
-    for item in items:
-        if item.endswith(".json") and Path(item).is_file():
-            try:
-                findings = json.loads(Path(item).read_text(encoding="utf-8"))["findings"]
-            except (ValueError, KeyError) as exc:
-                raise OddlingError(f"{item} is not an audit JSON (from `oddling audit --json`)") from exc
-            paths += [f["path"] for f in findings if not kinds or f["kind"] in kinds]
-        else:
-            paths.append(item)
-    result = api.bank_remove(bank_path, paths)
-    click.echo(f"Removed {result['removed']} references; the bank now holds {result['n_references']}.", err=True)
-    for missing in result["not_found"][:10]:
-        click.echo(f"  not in the bank: {missing}", err=True)
+def bank_remove(bank_path, items, kinds, everything, dry_run):
+    """Remove references from BANK: their paths as `bank info`/`audit` show them, or an audit JSON file
+    with --kind or --all. What goes is listed first."""
+    targets = removal_targets(list(items), tuple(kinds), everything)
 
+    def show(going):
+        click.echo(f"{'Would remove' if dry_run else 'Removing'} {plural(len(going), 'reference')}:", err=True)
+        for path in going:
+            click.echo(f"  {display_path(path)}  ({', '.join(targets[path])})", err=True)
 
+    result = api.bank_remove(bank_path, list(targets), dry_run=dry_run, before=show)
+    if dry_run:
+        click.echo(f"Dry run: nothing changed; the bank would hold {plural(result['n_references'], 'reference')}.",
+                   err=True)
+    else:
+        click.echo(f"Removed {plural(result['removed'], 'reference')}; the bank now holds "
+                   f"{plural(result['n_references'], 'reference')}.", err=True)

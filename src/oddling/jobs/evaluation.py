@@ -3,15 +3,15 @@ from __future__ import annotations
 
 import json
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from oddling.bank.store import Bank
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, load_bank_representation
-from oddling.jobs.scoring import as_bank, rows_from_embedded
+from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, load_bank_representation, plural
+from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
 from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows, write_text
 
 
@@ -25,6 +25,7 @@ class EvaluationResult:
     scores: np.ndarray
     bank: Bank | None = None
     root: Path | None = None    # the test folder
+    notes: list[str] = field(default_factory=list)   # what the labels leave out, one line each, for stderr
 
     @property
     def scored_labelled(self) -> list[ScoreRow]:
@@ -51,14 +52,35 @@ class EvaluationResult:
         return paths
 
 
-def attach_labels(rows: list[ScoreRow], labels_csv: str | os.PathLike | None, normal_labels: tuple[str, ...]) -> None:
-    from oddling.data.labels import label_from_folder, read_labels_csv
+def attach_labels(rows: list[ScoreRow], labels_csv: str | os.PathLike | None,
+                  normal_labels: tuple[str, ...]) -> dict:
+    """Set each row's label and kind; return what the labels leave out (data.labels.label_summary):
+    rows of the labels CSV whose file is not in the folder, files with no label."""
+    from oddling.data.labels import label_from_folder, label_summary, read_labels_csv
 
     table = read_labels_csv(Path(labels_csv)) if labels_csv else None
     for row in rows:
         found = table.get(row.path) if table is not None else label_from_folder(row.path, normal_labels)
         if found is not None:
             row.label, row.kind = found
+    if table is not None:
+        return label_summary(table, [r.path for r in rows])
+    unlabelled = sorted(r.path for r in rows if r.label is None)
+    return {"missing_files": [], "unlabelled": unlabelled, "n_labelled": len(rows) - len(unlabelled)}
+
+
+def label_notes(gaps: dict, test_dir: Path, from_csv: bool) -> list[str]:
+    """What the labels leave out, in words for stderr (data.labels.describe_label_summary)."""
+    from oddling.data.labels import ROWS_SHOWN, describe_label_summary
+
+    if from_csv:
+        return describe_label_summary(gaps)
+    paths = gaps["unlabelled"]
+    if not paths:
+        return []
+    more = f", and {len(paths) - ROWS_SHOWN} more" if len(paths) > ROWS_SHOWN else ""
+    return [f"{plural(len(paths), 'file')} at the top of {test_dir}, outside any class subfolder, "
+            f"{'has' if len(paths) == 1 else 'have'} no label (not counted): {', '.join(paths[:ROWS_SHOWN])}{more}"]
 
 
 def labelled_arrays(rows: list[ScoreRow], where: Path, normal_labels: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
@@ -85,7 +107,9 @@ def evaluate(
     """Score a labelled test folder and measure how well scores separate normal from anomalous.
 
     Labels come from subfolders (a folder named in `normal_labels` is normal, any other is an
-    anomaly kind) or from `labels_csv`. Unreadable and unlabelled files are listed, never counted.
+    anomaly kind) or from `labels_csv`. Unreadable and unlabelled files are listed, never counted;
+    `notes` words what the labels leave out (rows of the CSV whose file is missing, files with no
+    label) for the CLI to print.
     """
     from oddling.evaluation.metrics import evaluation_summary
 
@@ -99,9 +123,16 @@ def evaluate(
     rep = load_bank_representation(bank, options)
     embedded = embed_folder(test_dir, rep, options, "evaluating", (bank.path,) if bank.path else ())
     rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
-    attach_labels(rows, labels_csv, normal_labels)
+    warn_about_encoding(bank, test_dir, rows)
+    gaps = attach_labels(rows, labels_csv, normal_labels)
     rows = sort_rows(rows)
-    labels, scores = labelled_arrays(rows, test_dir, normal_labels)
+    notes = label_notes(gaps, test_dir, labels_csv is not None)
+    try:
+        labels, scores = labelled_arrays(rows, test_dir, normal_labels)
+    except OddlingError as exc:
+        if not notes:
+            raise
+        raise OddlingError(f"{exc}; " + "; ".join(notes)) from exc
     used = [r for r in rows if r.score is not None and r.label is not None]
     summary = evaluation_summary(labels, scores, cutoff, kinds=[r.kind for r in used], beta=beta)
     summary["bank"] = {"path": str(bank.path) if bank.path else None, "backbone": bank.backbone["id"],
@@ -110,4 +141,5 @@ def evaluate(
                        "target_fpr": target_fpr or bank.target_fpr}
     summary["unreadable"] = [{"path": r.path, "status": r.status} for r in rows if r.score is None]
     summary["unlabelled"] = [r.path for r in rows if r.score is not None and r.label is None]
-    return EvaluationResult(rows, summary, labels, scores, bank, test_dir)
+    summary["labels_without_file"] = gaps["missing_files"]
+    return EvaluationResult(rows, summary, labels, scores, bank, test_dir, notes)

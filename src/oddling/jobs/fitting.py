@@ -15,7 +15,8 @@ from oddling.detectors import DEFAULT_DETECTOR, make_detector
 from oddling.detectors.conformal import ConformalThreshold
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, refuse_existing, warn_if_few_calibration
+from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
+                                 no_images_message, refuse_existing, warn_if_few_calibration)
 from oddling.numbers import json_number
 
 DEFAULT_REPRESENTATION = "efficientnet-lite0"
@@ -60,19 +61,34 @@ def check_pairing(spec: RepresentationSpec, detector) -> None:
                                             else " (use the patch detector, patch-knn)"))
 
 
+def reference_entry(path: str, sha256: str, file: Path) -> dict:
+    """One reference of a bank: its path, content hash and file format (JPEG: quality estimate too)."""
+    fmt, quality = image_format(file)
+    entry = {"path": path, "sha256": sha256}
+    if fmt is not None:
+        entry["format"] = fmt
+    if quality is not None:
+        entry["jpeg_quality"] = quality
+    return entry
+
+
+def references_formats(references: list[dict]) -> dict:
+    """The bank's "formats" summary of its references (format_summary); {} if any is unknown."""
+    return format_summary((r.get("format"), r.get("jpeg_quality")) for r in references)
+
+
 def build_bank(embedded, representation, detector, target_fpr: float, reference_dir: Path) -> Bank:
     """Fit the detector on embedded references and assemble the bank (not saved)."""
     usable = embedded.ok_records
     if not usable:
-        skipped = [r for r in embedded.records if r.status != OK]
-        detail = f" (first skipped: {skipped[0].path}: {skipped[0].status})" if skipped else ""
-        raise OddlingError(f"{reference_dir} has no usable images{detail}")
+        raise OddlingError(no_images_message(reference_dir, embedded.records))
     hashes = np.array([r.sha256 for r in usable])
     detector.fit(embedded.embeddings, hashes)
+    references = [reference_entry(r.path, r.sha256, reference_dir / r.path) for r in usable]
     return Bank(
         representation=representation.fingerprint(),
         detector=detector,
-        references=[{"path": r.path, "sha256": r.sha256} for r in usable],
+        references=references,
         features=embedded.embeddings if representation.spec.feature_kind == "vector" else None,
         calibration_scores=np.asarray(detector.calibration_scores_, dtype=np.float64),
         calibration=calibration_record(detector, target_fpr),
@@ -82,6 +98,7 @@ def build_bank(embedded, representation, detector, target_fpr: float, reference_
         health_stats=embedded.health,
         health_fences=fences_from_table(embedded.health),
         skipped=[{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK],
+        formats=references_formats(references),
     )
 
 

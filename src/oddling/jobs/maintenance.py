@@ -9,12 +9,13 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import Bank, load_bank, save_bank
-from oddling.data.intake import discover
+from oddling.data.intake import walk
 from oddling.detectors.conformal import smallest_supported_rate
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, embed_paths, load_bank_representation, supported_rate_text
-from oddling.jobs.fitting import calibration_record, fences_from_table
+from oddling.jobs.common import (RunOptions, embed_paths, load_bank_representation, no_images_message, plural,
+                                 supported_rate_text)
+from oddling.jobs.fitting import calibration_record, fences_from_table, reference_entry, references_formats
 from oddling.jobs.scoring import as_bank
 
 
@@ -34,6 +35,7 @@ def refit(bank: Bank, references: list[dict], features: np.ndarray, health: np.n
     bank.calibration_scores = np.asarray(detector.calibration_scores_, dtype=np.float64)
     bank.calibration = calibration_record(detector, bank.target_fpr)
     bank.health_fences = fences_from_table(health)
+    bank.formats = references_formats(references)
     return bank
 
 
@@ -87,16 +89,23 @@ def bank_add(
     require_features(bank, "bank add")
     source = Path(source)
     rep = load_bank_representation(bank, options)
+    left_out = None
     if source.is_dir():
-        base, paths = source, discover(source, exclude=(Path(bank_path),))
+        found = walk(source, exclude=(Path(bank_path),))
+        base, paths, left_out = source, found.paths, found.left_out
     elif source.is_file() and source.suffix.lower() == ".csv":
         paths = _read_decisions(source, Path(root) if root else None)
-        base = Path(os.path.commonpath([p.resolve().parent for p in paths])) if paths else source.parent
+        if not paths:
+            raise OddlingError(f"{source} marks no file normal; nothing to add (the decision column says "
+                               "normal for the images to add)")
+        base = Path(os.path.commonpath([p.resolve().parent for p in paths]))
         paths = [p.resolve() for p in paths]
     else:
         raise OddlingError(f"{source} is neither a folder nor a decisions CSV")
     known = {r["sha256"] for r in bank.references}
     embedded = embed_paths(base, paths, rep, options, "embedding new references")
+    if not embedded.ok_records:
+        raise OddlingError(no_images_message(source, embedded.records, left_out) + "; nothing was added")
     ref_root = Path(bank.reference_root)
     added, duplicates = [], 0
     vectors, stats = [bank.features], [bank.health_stats]
@@ -105,7 +114,7 @@ def bank_add(
             duplicates += 1
             continue
         known.add(rec.sha256)
-        added.append({"path": _bank_relative(base / rec.path, ref_root), "sha256": rec.sha256})
+        added.append(reference_entry(_bank_relative(base / rec.path, ref_root), rec.sha256, base / rec.path))
         vectors.append(embedded.embeddings[rec.row:rec.row + 1])
         stats.append(embedded.health[rec.row:rec.row + 1])
     skipped = [{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK]
@@ -115,18 +124,85 @@ def bank_add(
     return {"added": len(added), "already_in_bank": duplicates, "skipped": skipped, "n_references": bank.size}
 
 
-def bank_remove(bank_path: str | os.PathLike, paths: list[str]) -> dict:
-    """Remove references by their bank path (as `bank info` / `audit` print them); refit and recalibrate."""
+AUDIT_KINDS = ("outlier", "duplicate", "near_duplicate", "health")
+NAMED = "named"   # the reason of a reference named on the command line rather than found by an audit
+
+
+def removal_targets(items: list[str], kinds: tuple[str, ...] = (), everything: bool = False) -> dict[str, list[str]]:
+    """What `bank remove ITEMS` means: {reference path: [why: audit kinds, or "named"]}, in the order given.
+
+    An item ending in .json that is a file is an audit JSON (`oddling audit --json`); from it only
+    the findings of `kinds` are taken, or all of them with `everything`, and one of the two must
+    be asked for: an audit usually lists more than a user means to remove. Any other item is a
+    reference path as `bank info` / `audit` print it.
+    """
+    import json
+
+    targets: dict[str, list[str]] = {}
+    audits = 0
+    for item in items:
+        if item.endswith(".json") and Path(item).is_file():
+            audits += 1
+            try:
+                findings = json.loads(Path(item).read_text(encoding="utf-8"))["findings"]
+                pairs = [(f["path"], f["kind"]) for f in findings]
+            except (OSError, UnicodeDecodeError, ValueError, KeyError, TypeError) as exc:
+                raise OddlingError(f"{item} is not an audit JSON (from `oddling audit --json`)") from exc
+            if not kinds and not everything:
+                counts = {k: sum(kind == k for _, kind in pairs) for k in dict.fromkeys(kind for _, kind in pairs)}
+                listed = ", ".join(f"{n} {k}" for k, n in counts.items())
+                raise OddlingError(
+                    f"{item} lists {plural(len(pairs), 'finding')}" + (f" ({listed})" if listed else "")
+                    + ": say which to remove with --kind KIND (repeatable) or --all; --dry-run shows the list first")
+            for path, kind in pairs:
+                if everything or kind in kinds:
+                    targets.setdefault(path, [])
+                    if kind not in targets[path]:
+                        targets[path].append(kind)
+        else:
+            targets.setdefault(item, [])
+            if NAMED not in targets[item]:
+                targets[item].append(NAMED)
+    if (kinds or everything) and not audits:
+        raise OddlingError("--kind and --all choose findings of an audit JSON (`oddling audit --json`); "
+                           "name references by their paths without them")
+    return targets
+
+
+def bank_remove(bank_path: str | os.PathLike, paths: list[str], *, dry_run: bool = False,
+                before=None) -> dict:
+    """Remove references by their bank path (as `bank info` / `audit` print them); refit and recalibrate.
+
+    Every path must name a reference of the bank: otherwise OddlingError naming those that do not,
+    and nothing is changed. `before(paths)` (if given) is called with the references that will
+    go, in bank order, before any work: the CLI prints them. The detector is then fitted on what
+    is left; if it cannot be (too few references), OddlingError saying so, and nothing is changed.
+    With `dry_run` the refit is tried but the bank is not replaced.
+    """
     bank = load_bank(bank_path)
     require_features(bank, "bank remove")
     wanted = set(paths)
+    present = {r["path"] for r in bank.references}
+    not_found = [p for p in dict.fromkeys(paths) if p not in present]
+    if not_found or not wanted:
+        shown = ", ".join(not_found[:5]) + (f", and {len(not_found) - 5} more" if len(not_found) > 5 else "")
+        raise OddlingError(
+            (f"{plural(len(not_found), 'path')} not in bank {bank_path}: {shown}" if not_found
+             else "nothing to remove") + "; nothing was changed (`oddling bank info` and `oddling audit` "
+            "show reference paths, relative to the reference folder)")
+    going = [r["path"] for r in bank.references if r["path"] in wanted]
+    if before is not None:
+        before(going)
     keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
-    found = {bank.references[i]["path"] for i in range(bank.size)} & wanted
-    not_found = sorted(wanted - found)
-    if found:
+    try:
         refit(bank, [bank.references[i] for i in keep], bank.features[keep], bank.health_stats[keep])
+    except OddlingError as exc:
+        raise OddlingError(f"removing {plural(len(going), 'reference')} would leave {len(keep)}, too few for "
+                           f"the {bank.detector.name} detector ({exc}); nothing was changed") from exc
+    if not dry_run:
         save_bank(bank, bank_path, force=True)
-    return {"removed": len(found), "not_found": not_found, "n_references": bank.size}
+    return {"removed": 0 if dry_run else len(going), "paths": going, "not_found": [], "n_references": bank.size,
+            "dry_run": dry_run}
 
 
 def bank_info(bank_path: str | os.PathLike) -> dict:

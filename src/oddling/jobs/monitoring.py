@@ -82,4 +82,6 @@ def drift_history(bank_path: str | os.PathLike) -> list[dict]:
             entries.append(json.loads(line))
         except json.JSONDecodeError:
             raise OddlingError(f"{path} line {number} is not JSON; remove or repair that line") from None
+    if not entries:
+        raise OddlingError(f"{path} holds no checks yet; run `oddling drift INCOMING --bank {bank_path}`")
     return [e | {"expected_share": e.get("expected_share", bank.target_fpr)} for e in entries]

@@ -10,8 +10,8 @@ import numpy as np
 from oddling.bank.store import Bank, load_bank
 from oddling.data.health import health_findings, health_text
 from oddling.errors import OddlingError
-from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, load_bank_representation,
-                                 warn_if_few_calibration)
+from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
+                                 load_bank_representation, warn_if_few_calibration, warn_if_other_encoding)
 from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows, write_text
 
 
@@ -126,19 +126,31 @@ def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None) -> tuple[
     return rows, threshold.cutoff
 
 
+def warn_about_encoding(bank: Bank, root: Path, rows: list[ScoreRow]) -> None:
+    """OddlingWarning when the scored files are encoded unlike the bank's references (format, JPEG
+    quality): jobs.common.warn_if_other_encoding. Reads each scored file's header, no pixels."""
+    if not bank.formats:
+        return
+    batch = format_summary(image_format(root / r.path) for r in rows if r.score is not None)
+    warn_if_other_encoding(bank.formats, batch, stacklevel=4)
+
+
 def score(
     incoming_dir: str | os.PathLike,
     bank: Bank | str | os.PathLike,
     *,
     target_fpr: float | None = None,
     backbone: str | None = None,
+    allow_empty: bool = False,
     options: RunOptions | None = None,
 ) -> ScoreResult:
     """Score every file under `incoming_dir` against the bank.
 
     score = the bank's detector score (higher = more anomalous; `bank.detector.describe_score()`
     says what it measures); p_value = conformal p-value against the bank's calibration scores;
-    flagged = p_value <= target_fpr (the bank's rate unless overridden).
+    flagged = p_value <= target_fpr (the bank's rate unless overridden). A folder without one
+    usable image is an OddlingError ("no images found in ...") unless `allow_empty` (for
+    pipelines: then the rows say why each file has no score).
     """
     options = options or RunOptions()
     incoming_dir = folder(incoming_dir, "incoming folder")
@@ -151,6 +163,7 @@ def score(
                            "scores from different backbones cannot be compared")
     rep = load_bank_representation(bank, options)
     exclude = (bank.path,) if bank.path else ()
-    embedded = embed_folder(incoming_dir, rep, options, "scoring", exclude)
+    embedded = embed_folder(incoming_dir, rep, options, "scoring", exclude, allow_empty=allow_empty)
     rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
+    warn_about_encoding(bank, incoming_dir, rows)
     return ScoreResult(sort_rows(rows), bank, target_fpr or bank.target_fpr, cutoff, incoming_dir)

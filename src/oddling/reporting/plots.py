@@ -62,31 +62,48 @@ def plot_pr(precision, recall, average_precision: float | None, prevalence: floa
 __all__ = ["plot_pr", "plot_roc"]
 
 
-def plot_drift_history(entries: list[dict], expected_share: float, path: str | os.PathLike,
-                       title: str = "Batch shift over time") -> Path:
-    """Flagged share per batch against the expected share (top) and the MMD effect size (bottom)."""
+def drift_history_figure(entries: list[dict], expected_share: float, title: str = "Batch shift over time"):
+    """The figure of plot_drift_history (not saved): flagged share per batch against the expected
+    share (top) and the MMD effect size (bottom), checks with a shift marked on both.
+
+    The legend sits outside the axes, to the right, so it never covers a marker; time labels come
+    from matplotlib's ConciseDateFormatter (the year, month or day once, in the corner; each tick
+    only what changes), in UTC, so a tick never reads like "02 01:34".
+    """
     import datetime as dt
 
+    import matplotlib.dates as mdates
+
     times = [dt.datetime.fromisoformat(e["time"]) for e in entries]
-    fig, (top, bottom) = plt.subplots(2, 1, figsize=(7, 5.5), sharex=True, dpi=120)
+    shifted = [i for i, e in enumerate(entries) if e["shift"]]
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(8, 5.5), sharex=True)
     top.plot(times, [e["flagged_share"] for e in entries], marker="o", label="flagged share")
     top.axhline(expected_share, linestyle="--", color="grey", label=f"expected ({expected_share:g})")
-    top.scatter([t for t, e in zip(times, entries) if e["shift"]],
-                [e["flagged_share"] for e in entries if e["shift"]], color="crimson", zorder=3, label="shift")
+    top.scatter([times[i] for i in shifted], [entries[i]["flagged_share"] for i in shifted], color="crimson",
+                zorder=3, label="shift")
     top.set_ylabel("Share flagged")
     top.set_title(title)
-    top.legend(loc="upper left")
+    top.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0, fontsize=8)
     top.grid(alpha=0.3)
-    bottom.plot(times, [e["mmd"] for e in entries], marker="o", color="darkorange")
+    bottom.plot(times, [e["mmd"] for e in entries], marker="o", color="darkorange", label="MMD")
+    bottom.scatter([times[i] for i in shifted], [entries[i]["mmd"] for i in shifted], color="crimson", zorder=3,
+                   label="shift")
     bottom.set_ylabel("MMD (effect size)")
     bottom.set_xlabel("Time of the check (UTC)")
+    bottom.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), borderaxespad=0.0, fontsize=8)
     bottom.grid(alpha=0.3)
-    fig.autofmt_xdate()
-    fig.tight_layout()
+    locator = mdates.AutoDateLocator(tz=dt.timezone.utc)
+    bottom.xaxis.set_major_locator(locator)
+    bottom.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator, tz=dt.timezone.utc))
+    return fig
+
+
+def plot_drift_history(entries: list[dict], expected_share: float, path: str | os.PathLike,
+                       title: str = "Batch shift over time") -> Path:
+    """drift_history_figure written as a PNG; missing parent folders are created (as the CSV writer does)."""
     out = Path(path)
-    fig.savefig(out)
-    plt.close(fig)
-    return out
+    out.parent.mkdir(parents=True, exist_ok=True)
+    return _write(drift_history_figure(entries, expected_share, title), out)
 
 
 def plot_leaderboard(entries: list[dict], holdout_auroc: float | None, path: str | os.PathLike,
