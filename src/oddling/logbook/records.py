@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import json
-import math
 import os
 import uuid
 from pathlib import Path
@@ -135,10 +134,11 @@ def drift_over_log(log: ScoreLog, bank, *, last: int | None = None, since: str |
     cutoff = bank.threshold().cutoff
     n_flagged = sum(1 for r in rows if r.score is not None and r.score > cutoff)
     share = flagged_share_test(n_flagged, len(rows), bank.target_fpr)
-    if len(features) >= 2:
-        mmd = mmd_permutation_test(features, bank.features, n_permutations=n_permutations, seed=seed)
-    else:
-        mmd = {"mmd2": math.nan, "p_value": math.nan, "bandwidth": math.nan}
+    if len(features) < 2:
+        raise OddlingError(f"the features of only {len(features)} of the {len(set(r.sha256 for r in rows))} distinct "
+                           "logged images are available (neither in the embedding cache nor in files that still "
+                           "exist); a shift test needs at least 2")
+    mmd = mmd_permutation_test(features, bank.features, n_permutations=n_permutations, seed=seed)
     shift = shift_verdict(mmd["p_value"], share["binomial_p_value"])
     window = f"last {last}" if last is not None else f"since {since}"
     result = {
@@ -151,7 +151,7 @@ def drift_over_log(log: ScoreLog, bank, *, last: int | None = None, since: str |
         "n_batch": len(features),
         "n_without_features": len(set(r.sha256 for r in rows if r.sha256)) - len(kept),
         "n_bank": bank.size,
-        "mmd": json_number(float(np.sqrt(max(mmd["mmd2"], 0.0)))) if not math.isnan(mmd["mmd2"]) else None,
+        "mmd": json_number(float(np.sqrt(max(mmd["mmd2"], 0.0)))),
         "mmd2": json_number(mmd["mmd2"]),
         "mmd_p_value": json_number(mmd["p_value"]),
         "mmd_bandwidth": json_number(mmd["bandwidth"]),
