@@ -283,14 +283,12 @@ class ScoringEngine:
 
     def prepare(self, uploads: list[tuple[str, str | None, bytes]]) -> list[_Item]:
         """(name, content type, bytes) per image -> items, decoded and checked as `score` does."""
+        return [self._prepare_one(*upload) for upload in uploads]
+
+    def preparing(self, delta: int) -> None:
+        """Requests being decoded now: the worker waits up to max_wait_ms for them only while there are some."""
         with self._preparing_lock:
-            self._preparing += 1
-        try:
-            return [self._prepare_one(*upload) for upload in uploads]
-        except BaseException:
-            with self._preparing_lock:
-                self._preparing -= 1
-            raise
+            self._preparing += delta
 
     def _prepare_one(self, name: str, content_type: str | None, data: bytes) -> _Item:
         from oddling.data.health import STATS, image_stats
@@ -318,7 +316,7 @@ class ScoringEngine:
         return item
 
     def submit(self, items: list[_Item], request_id: str) -> concurrent.futures.Future:
-        """Queue a prepared request (the caller's `prepare` count ends here); 503 when the queue is full."""
+        """Queue a prepared request; 503 when the queue is full."""
         job = _Job(items, request_id)
         try:
             self._queue.put_nowait(job)
@@ -326,9 +324,6 @@ class ScoringEngine:
             self.metrics.count("rejected_full")
             raise ServiceError(503, "queue_full", f"the service is busy ({self.config.queue_size} requests "
                                "waiting); retry later", {"Retry-After": str(self.config.retry_after_s)}) from None
-        finally:
-            with self._preparing_lock:
-                self._preparing -= 1
         return job.future
 
     @property
@@ -573,8 +568,12 @@ def serve_app(bank, *, log=None, token: str | None = None, config: ServiceConfig
     async def score_uploads(uploads: list[tuple[str, str | None, bytes]]) -> JSONResponse:
         request_id = uuid.uuid4().hex[:16]
         loop = asyncio.get_running_loop()
-        items = await loop.run_in_executor(None, engine.prepare, uploads)
-        future = engine.submit(items, request_id)
+        engine.preparing(+1)
+        try:
+            items = await loop.run_in_executor(None, engine.prepare, uploads)
+            future = engine.submit(items, request_id)
+        finally:
+            engine.preparing(-1)   # after the job is queued: the worker sees it queued or still coming
         try:
             rows = await asyncio.wait_for(asyncio.wrap_future(future), config.timeout_s)
         except asyncio.TimeoutError:
