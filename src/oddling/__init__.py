@@ -15,3 +15,5 @@ from oddling.errors import OddlingError  # noqa: E402
 __all__ = ["__version__", "Bank", "EvaluationResult", "OddlingError", "OddlingWarning", "RunOptions", "ScoreResult",
            "audit", "bank_add", "bank_info", "bank_remove", "drift", "drift_history", "evaluate", "fit",
            "load_bank", "score", "tune", "TuneResult"]
+from .api import Watcher, serve_app  # noqa: E402
+__all__ += ["serve_app", "Watcher"]

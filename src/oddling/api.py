@@ -16,6 +16,9 @@ from oddling.jobs.monitoring import drift, drift_history
 from oddling.jobs.scoring import ScoreResult, score
 from oddling.jobs.tuning import TuneResult, tune
 from oddling.reporting.results import count_ok
+from oddling.jobs.service import serve_app
+from oddling.jobs.watching import Watcher
 
 __all__ = ["fit", "score", "evaluate", "drift", "drift_history", "audit", "bank_add", "bank_remove", "bank_info", "tune", "TuneResult",
            "RunOptions", "ScoreResult", "EvaluationResult", "OddlingWarning", "load_bank", "count_ok"]
+__all__ += ["serve_app", "Watcher"]

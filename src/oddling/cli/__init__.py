@@ -8,6 +8,7 @@ import click
 
 from oddling import __version__
 from oddling.cli import analysis, backbones, demo, upkeep
+from oddling.cli import service
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"], "show_default": True})
@@ -24,6 +25,8 @@ def main():
 
 for command in (analysis.fit, analysis.score, analysis.evaluate, analysis.report, analysis.tune, demo.demo, demo.bench,
                 upkeep.drift, upkeep.audit, upkeep.bank_group, backbones.backbones):
+    main.add_command(command)
+for command in (service.serve, service.watch, service.log_group):
     main.add_command(command)
 
 

@@ -114,17 +114,34 @@ def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset
 @click.option("--force", is_flag=True, help="Overwrite existing output files.")
 @click.option("--allow-empty", is_flag=True,
               help="A folder without one usable image is not an error (for pipelines): exit 0, rows say why.")
+@click.option("--log", "log_path", is_flag=False, flag_value="", default=None, metavar="[PATH]",
+              help="Also append every row to the scored-image log (PATH, or <bank>.log.sqlite beside the bank "
+                   "when --log is given without one).")
 @run_options
 @user_errors
 def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, maps_dir, force,
-          allow_empty, **run):
+          allow_empty, log_path=None, **run):
     """Score every image in INCOMING_DIR against a bank."""
     check_output(out_csv, force=force, option="--out", example="scores.csv")
     check_output(report_path, force=force, option="--report", example="report.html")
-    result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, allow_empty=allow_empty,
-                       options=_options(**run))
-    result.write_csv(out_csv, force=True)
-    summary = result.summary() | {"out": str(out_csv)}
+    log = None
+    if log_path is not None:   # opened first: a bad log path costs no scoring
+        from oddling.logbook.store import open_log
+
+        log = open_log(Path(log_path) if log_path else None, bank_path=bank_path)
+    try:
+        result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, allow_empty=allow_empty,
+                           options=_options(**run))
+        result.write_csv(out_csv, force=True)
+        summary = result.summary() | {"out": str(out_csv)}
+        if log is not None:
+            from oddling.logbook.records import log_score_result
+
+            log_score_result(result, log)
+            summary["log"] = str(log.path)
+    finally:
+        if log is not None:
+            log.close()
     if maps_dir is not None:
         result.write_maps(maps_dir)
         summary["maps"] = str(maps_dir)
@@ -195,9 +212,15 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
 
 
 @click.command()
-@click.argument("folder", type=click.Path(exists=True, file_okay=False, path_type=Path))
-@bank_option
-@click.option("--out", "out_html", required=True, type=click.Path(path_type=Path),
+@click.argument("folder", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.option("--bank", "bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path), default=None,
+              help="Bank folder made by `oddling fit` (required, except with --log whose bank still exists).")
+@click.option("--log", "log_path", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
+              help="Instead of FOLDER: rows of this scored-image log (with --since, --until or --last).")
+@click.option("--since", default=None, help="With --log: rows logged at or after this time (ISO 8601, or 24h, 7d).")
+@click.option("--until", default=None, help="With --log: rows logged before this time.")
+@click.option("--last", type=click.IntRange(min=1), default=None, help="With --log: the newest N rows.")
+@click.option("--out", "out_html", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="HTML file to write; plots go to a sibling folder <name>_plots/.")
 @click.option("--labelled", is_flag=True,
               help="FOLDER is a labelled test folder (class subfolders, or --labels): show labels and metrics.")
@@ -213,12 +236,32 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
               help="A folder without one usable image is not an error (for pipelines): exit 0, rows say why.")
 @run_options
 @user_errors
-def report(folder, bank_path, out_html, labelled, labels_csv, normal_labels, top_n, target_fpr, force, allow_empty,
-           **run):
-    """Write the review page for FOLDER scored against a bank (cached embeddings make this quick)."""
+def report(folder, bank_path, log_path, since, until, last, out_html, labelled, labels_csv, normal_labels, top_n,
+           target_fpr, force, allow_empty, **run):
+    """Write the review page for FOLDER scored against a bank (cached embeddings make this quick), or for
+    images in the scored-image log (--log)."""
     from oddling.reporting.page import write_report
 
     check_output(out_html, force=force, option="--out", example="report.html")
+    if log_path is not None:
+        from oddling.cli.service import bank_for_log, open_existing_log
+        from oddling.logbook.records import report_rows
+        from oddling.logbook.store import parse_time
+
+        if folder is not None or labelled or labels_csv:
+            raise OddlingError("--log reports logged rows: give no FOLDER, --labelled or --labels with it")
+        with open_existing_log(log_path, None) as log:
+            bank = api.load_bank(bank_for_log(log, bank_path))
+            result, image_of = report_rows(log, bank, since=parse_time(since) if since else None,
+                                           until=parse_time(until) if until else None, last=last)
+        window = " ".join(p for p in (f"since {since}" if since else "", f"until {until}" if until else "",
+                                      f"last {last}" if last else "") if p) or "all rows"
+        path = write_report(out_html, result, top_n=top_n, force=True, image_of=image_of,
+                            source_text=f"log {log_path} ({window})")
+        click.echo(f"Review page: {path}", err=True)
+        return
+    if folder is None or bank_path is None:
+        raise click.UsageError("give FOLDER and --bank, or --log LOG")
     options = _options(**run)
     if labelled or labels_csv:
         result = api.evaluate(folder, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),

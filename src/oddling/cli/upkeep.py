@@ -27,13 +27,33 @@ from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed for subsampling and permutations.")
 @click.option("--json", "as_json", is_flag=True, help="Print the statistics as JSON.")
 @click.option("--fail-on-shift", is_flag=True, help="Exit 1 when the batch has shifted.")
+@click.option("--log", "log_path", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
+              help="Instead of INCOMING_DIR: test images from this scored-image log (with --last or --since).")
+@click.option("--last", type=click.IntRange(min=2), default=None, help="With --log: the newest N scored images.")
+@click.option("--since", default=None, help="With --log: images logged at or after this time (ISO 8601, or 24h, 7d).")
 @run_options
 @user_errors
-def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, as_json, fail_on_shift, **run):
-    """Test whether the batch INCOMING_DIR as a whole has shifted away from the bank."""
+def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, as_json, fail_on_shift,
+          log_path=None, last=None, since=None, **run):
+    """Test whether the batch INCOMING_DIR as a whole (or the images in a log) has shifted away from the bank."""
     if plot_path is not None and history_bank is None:
         raise click.UsageError("--plot draws the history of checks: give it with --history BANK")
-    if history_bank is not None:
+    if log_path is not None:
+        from oddling.cli.service import bank_for_log, open_existing_log
+        from oddling.logbook.records import drift_over_log
+        from oddling.logbook.store import parse_time
+
+        if incoming_dir is not None or history_bank is not None:
+            raise click.UsageError("--log tests logged images: give no INCOMING_DIR or --history with it")
+        if (last is None) == (since is None):
+            raise click.UsageError("with --log give one of --last N or --since TIME")
+        with open_existing_log(log_path, None) as log:
+            bank = api.load_bank(bank_for_log(log, bank_path))
+            result = drift_over_log(log, bank, last=last, since=parse_time(since) if since else None,
+                                    n_permutations=permutations, seed=seed, record=True, options=_options(**run))
+    elif last is not None or since is not None:
+        raise click.UsageError("--last and --since go with --log")
+    if log_path is None and history_bank is not None:
         check_output(plot_path, force=True, suffix=".png", option="--plot", example="drift_history.png")
         entries = api.drift_history(history_bank)
         if plot_path is not None:
@@ -48,9 +68,10 @@ def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, 
                 click.echo(f"{e['time']}  {'SHIFT   ' if e['shift'] else 'no shift'}  flagged {e['flagged_share']:.3f} "
                            f"(expected {e['expected_share']:g})  MMD {e['mmd']:.4f} p {e['mmd_p_value']:.4f}  {e['batch']}")
         return
-    if incoming_dir is None or bank_path is None:
-        raise click.UsageError("give INCOMING_DIR and --bank, or --history BANK")
-    result = api.drift(incoming_dir, bank_path, n_permutations=permutations, seed=seed, options=_options(**run))
+    if log_path is None:
+        if incoming_dir is None or bank_path is None:
+            raise click.UsageError("give INCOMING_DIR and --bank, or --history BANK, or --log LOG")
+        result = api.drift(incoming_dir, bank_path, n_permutations=permutations, seed=seed, options=_options(**run))
     if as_json:
         _print_json(result)
     else:

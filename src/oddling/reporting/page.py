@@ -64,6 +64,8 @@ def write_report(
     title: str | None = None,
     force: bool = False,
     thumb_px: int = 160,
+    image_of=None,
+    source_text: str | None = None,
 ) -> Path:
     """Write the review page for a score or evaluate run; return its path.
 
@@ -79,6 +81,8 @@ def write_report(
         an EvaluationResult.
     top_n : cards in the gallery, highest scores first; the page says how many more exist.
     thumb_px : longest side of the embedded JPEG thumbnails.
+    image_of : rows from the scored-image log: row -> the file to show (None: a placeholder), instead
+        of `scored_root / row.path`. source_text : what the page says was scored, instead of the folder.
     """
     out_html = Path(out_html)
     bank = bank if bank is not None else getattr(result, "bank", None)
@@ -114,12 +118,14 @@ def write_report(
                                                  plots / HISTOGRAM_FILE, bank.detector.describe_score())}
     if metrics is not None:
         figures.update(_evaluation_plots(result, metrics, plots))
-    thumbs = _thumbnails(shown, scored_root, Path(bank.reference_root), thumb_px)
+    image_of = image_of or (lambda row: scored_root / row.path)
+    thumbs = _thumbnails(shown, image_of, Path(bank.reference_root), thumb_px)
     heatmaps = _heatmaps(shown, scored, scored_root, bank, thumb_px)
 
     page = _Page(rows=rows, shown=shown, bank=bank, scored_root=scored_root, metrics=metrics,
                  target_fpr=target_fpr, cutoff=cutoff, title=title, thumbs=thumbs, heatmaps=heatmaps,
-                 figures={k: _png_uri(p) for k, p in figures.items()}, plots_dir=plots.name)
+                 figures={k: _png_uri(p) for k, p in figures.items()}, plots_dir=plots.name,
+                 image_of=image_of, source_text=source_text)
     return write_text(out_html, page.render(), force=True)
 
 
@@ -248,9 +254,9 @@ def _heatmaps(shown: list[ScoreRow], scored: list[ScoreRow], scored_root: Path, 
         return dict(zip([r.path for r in with_maps], uris))
 
 
-def _thumbnails(shown: list[ScoreRow], scored_root: Path, reference_root: Path, px: int) -> dict[Path, str | None]:
+def _thumbnails(shown: list[ScoreRow], image_of, reference_root: Path, px: int) -> dict[Path, str | None]:
     """One thumbnail per distinct file, so a reference near many cards is embedded once."""
-    files = list(dict.fromkeys([scored_root / r.path for r in shown]
+    files = list(dict.fromkeys([f for f in (image_of(r) for r in shown) if f is not None]
                                + [reference_root / p for r in shown for p in r.nearest]))
     with ThreadPoolExecutor(max_workers=min(8, os.cpu_count() or 1)) as pool:   # decoding releases the GIL
         return dict(zip(files, pool.map(lambda f: thumbnail_uri(f, px), files)))
@@ -294,15 +300,17 @@ _BLANK = "data:image/gif;base64,R0lGODlhAQABAIAAAAAAAP///yH5BAEAAAAALAAAAAABAAEA
 
 class _Page:
     def __init__(self, *, rows, shown, bank, scored_root, metrics, target_fpr, cutoff, title, thumbs, figures,
-                 plots_dir, heatmaps=None):
+                 plots_dir, heatmaps=None, image_of=None, source_text=None):
         self.rows, self.shown, self.bank, self.metrics = rows, shown, bank, metrics
         self.scored_root, self.target_fpr, self.cutoff = scored_root, target_fpr, cutoff
         self.thumbs, self.figures, self.plots_dir = thumbs, figures, plots_dir
         self.heatmaps = heatmaps or {}
+        self.image_of = image_of or (lambda row: scored_root / row.path)
+        self.source_text = source_text
         self.scored = [r for r in rows if r.score is not None]
         self.unreadable = [r for r in rows if r.score is None]
         self.labelled = any(r.label is not None for r in rows)
-        self.title = title or f"oddling review: {display_path(str(scored_root.name or scored_root))}"
+        self.title = title or f"oddling review: {display_path(source_text or str(scored_root.name or scored_root))}"
         self.ref_ids: dict[Path, str] = {}
         self.ref_uris: dict[str, str] = {}
 
@@ -351,6 +359,7 @@ class _Page:
             cutoff = (f"none: {len(b.calibration_scores)} calibration images are too few for a false-alarm "
                       f"rate of {_percent(self.target_fpr)}, so nothing can be flagged")
         facts = [
+            ("Scored", _path(self.source_text)) if self.source_text else
             ("Scored folder", f"<code>{_path(self.scored_root)}</code>"),
             ("Files", (f"{len(self.rows)} found, {len(self.scored)} scored, <strong>{flagged} flagged</strong>, "
                        f"{len(self.unreadable)} not scored")),
@@ -474,7 +483,8 @@ class _Page:
         return self.bank.detector.evidence_title
 
     def _card(self, rank: int, row: ScoreRow) -> str:
-        thumb = self.thumbs.get(self.scored_root / row.path)
+        source = self.image_of(row)
+        thumb = self.thumbs.get(source) if source is not None else None
         name = row.path.rsplit("/", 1)[-1]
         folder = f'<p class="path">{_path(row.path)}</p>' if name != row.path else ""
         if thumb:
