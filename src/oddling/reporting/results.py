@@ -1,7 +1,9 @@
 """Per-file results and their files: the scores CSV (sorted, every input accounted for) and the JSON summary."""
 from __future__ import annotations
 
+import errno
 import math
+import os
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -104,10 +106,26 @@ def write_text(path: Path, text: str, force: bool = False) -> Path:
         from oddling.errors import OddlingError
 
         raise OddlingError(f"{path} already exists; pass --force to overwrite it")
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.partial")
-    tmp.write_text(text, encoding="utf-8")
-    tmp.replace(path)
+    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with open(tmp, "w", encoding="utf-8") as f:
+            f.write(text)
+            f.flush()
+            os.fsync(f.fileno())   # a full disk may only say so here
+        os.replace(tmp, path)
+    except BaseException as exc:
+        try:
+            tmp.unlink(missing_ok=True)
+        except OSError:
+            pass
+        if not isinstance(exc, OSError):
+            raise
+        from oddling.errors import OddlingError
+
+        if exc.errno == errno.ENOSPC:
+            raise OddlingError(f"no space left on device while writing {path}; nothing was replaced") from exc
+        raise OddlingError(f"could not write {path} ({exc.strerror or exc}); nothing was replaced") from exc
     return path
 
 
