@@ -91,3 +91,24 @@ def test_csv_written_to_dev_full_is_a_clear_error(tmp_path):
     with pytest.raises(OddlingError, match="no space left on device while writing"):
         write_text(tmp_path / "scores.csv", "path,score\n" * 1000)
     assert not (tmp_path / "scores.csv").exists()
+
+
+@pytest.mark.parametrize("names", [None, ["features"], ["bank.json"]], ids=["every file", "features", "bank.json"])
+def test_bank_on_a_full_disk_is_a_clear_error_and_the_old_bank_stays(tmp_path, monkeypatch, names):
+    from oddling.bank.store import load_bank, save_bank
+    from test_bank import small_bank
+
+    old = small_bank()
+    save_bank(old, tmp_path / "b")
+    before = {p.name: p.read_bytes() for p in (tmp_path / "b").iterdir()}
+    new = small_bank()
+    new.tool_version = "9.9.9"
+    full_disk(monkeypatch, tmp_path, names)
+    with pytest.raises(OddlingError, match=r"no space left on device while writing bank .*b; nothing was replaced"):
+        save_bank(new, tmp_path / "b", force=True)
+    with pytest.raises(OddlingError, match="no space left on device"):
+        save_bank(new, tmp_path / "fresh")
+    monkeypatch.undo()
+    assert leftovers(tmp_path, keep=before) == ["b"]     # no .writing-* folder, no "fresh"
+    assert {p.name: p.read_bytes() for p in (tmp_path / "b").iterdir()} == before
+    assert load_bank(tmp_path / "b").tool_version == "0.1.0"

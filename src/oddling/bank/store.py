@@ -7,6 +7,7 @@ that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
 """
 from __future__ import annotations
 
+import errno
 import json
 import math
 import os
@@ -113,42 +114,71 @@ def is_bank(path: Path) -> bool:
 
 
 def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
-    """Write atomically. An existing bank is replaced only with force=True, and only once the new one is complete."""
+    """Write atomically. An existing bank is replaced only with force=True, and only once the new one is complete.
+
+    A write that fails (a full disk, a read-only folder) raises OddlingError and leaves the old
+    bank, if any, as it was, and no temporary files.
+    """
     target = Path(path)
     if target.exists():
         if not force:
             raise OddlingError(f"{target} already exists; pass --force to replace it")
         if not target.is_dir() or not (is_bank(target) or not any(target.iterdir())):
             raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-"))
+    tmp = None
     try:
-        if bank.features is not None:
-            np.save(tmp / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=np.float32))
-        np.save(tmp / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
-        np.save(tmp / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
-        for key, array in bank.detector.state()[1].items():
-            np.save(tmp / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
-        # Metadata last: a folder without bank.json is never taken for a bank.
-        with open(tmp / METADATA_FILE, "w", encoding="utf-8") as f:
-            json.dump(bank.metadata(), f, indent=2)
-            f.write("\n")
-            f.flush()
-            os.fsync(f.fileno())
+        target.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-"))
+        _write_files(bank, tmp)
         if target.exists():
             if (target / HISTORY_FILE).is_file():
                 shutil.copy2(target / HISTORY_FILE, tmp / HISTORY_FILE)
             old = target.with_name(f".{target.name}.old-{os.getpid()}")
             os.replace(target, old)
-            os.replace(tmp, target)
+            try:
+                os.replace(tmp, target)
+            except BaseException:
+                os.replace(old, target)
+                raise
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.replace(tmp, target)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+    except BaseException as exc:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+        if isinstance(exc, OSError):
+            raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
         raise
     bank.path = target
     return target
+
+
+def _write_failure(what: str, exc: OSError) -> str:
+    if exc.errno == errno.ENOSPC:
+        return f"no space left on device while writing {what}; nothing was replaced"
+    return f"could not write {what} ({exc.strerror or exc}); nothing was replaced"
+
+
+def _save_array(path: Path, array: np.ndarray) -> None:
+    with open(path, "wb") as f:
+        np.save(f, array)
+        f.flush()
+        os.fsync(f.fileno())
+
+
+def _write_files(bank: Bank, folder: Path) -> None:
+    if bank.features is not None:
+        _save_array(folder / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=np.float32))
+    _save_array(folder / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
+    _save_array(folder / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
+    for key, array in bank.detector.state()[1].items():
+        _save_array(folder / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
+    # Metadata last: a folder without bank.json is never taken for a bank.
+    with open(folder / METADATA_FILE, "w", encoding="utf-8") as f:
+        json.dump(bank.metadata(), f, indent=2)
+        f.write("\n")
+        f.flush()
+        os.fsync(f.fileno())
 
 
 class _Fields:
