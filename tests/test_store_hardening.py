@@ -112,3 +112,60 @@ def test_bank_on_a_full_disk_is_a_clear_error_and_the_old_bank_stays(tmp_path, m
     assert leftovers(tmp_path, keep=before) == ["b"]     # no .writing-* folder, no "fresh"
     assert {p.name: p.read_bytes() for p in (tmp_path / "b").iterdir()} == before
     assert load_bank(tmp_path / "b").tool_version == "0.1.0"
+
+
+def _images(folder: Path, n: int, seed: int = 0, size=(24, 24)) -> list[Path]:
+    from PIL import Image
+
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    paths = []
+    for i in range(n):
+        paths.append(folder / f"i{seed}_{i:03d}.png")
+        Image.fromarray((rng.random((*size, 3)) * 255).astype(np.uint8)).save(paths[-1])
+    return paths
+
+
+def _stub_embed(root, paths, cache):
+    """embed_files with the stand-in network of test_hostile (no real backbone)."""
+    from oddling.embedding.runner import embed_files
+    from test_hostile import _stub_backbone
+
+    return embed_files(root, paths, _stub_backbone(), batch_size=2, progress=False, workers=1, cache=cache)
+
+
+def _oddling_warnings(record) -> list[str]:
+    from oddling.jobs.common import OddlingWarning
+
+    return [str(w.message) for w in record if issubclass(w.category, OddlingWarning)]
+
+
+def test_cache_on_a_full_disk_warns_once_and_the_run_goes_on(tmp_path, monkeypatch):
+    import oddling.embedding.cache as cache_module
+    from oddling.embedding.cache import EmbeddingCache
+
+    paths = _images(tmp_path / "in", 7)
+    expected = _stub_embed(tmp_path / "in", paths, None)
+    monkeypatch.setattr(cache_module, "FLUSH_EVERY", 2)       # several chunk writes in one run
+    cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+    full_disk(monkeypatch, tmp_path / "cache")
+    with pytest.warns(Warning) as record:
+        embedded = _stub_embed(tmp_path / "in", paths, cache)
+    monkeypatch.undo()
+    [message] = _oddling_warnings(record)
+    assert "no space left on device" in message and "goes on without" in message
+    assert [r.status for r in embedded.records] == ["ok"] * 7
+    np.testing.assert_array_equal(embedded.embeddings, expected.embeddings)
+    assert not [p for p in leftovers(tmp_path / "cache") if "chunk" in p]      # no chunk, no .partial
+
+
+def test_cache_folder_that_cannot_be_made_warns_and_the_run_goes_on(tmp_path):
+    from oddling.embedding.cache import EmbeddingCache
+
+    paths = _images(tmp_path / "in", 3)
+    (tmp_path / "cache").write_text("a file where the cache folder should be")
+    with pytest.warns(Warning) as record:
+        cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+        embedded = _stub_embed(tmp_path / "in", paths, cache)
+    assert len(_oddling_warnings(record)) == 1
+    assert [r.status for r in embedded.records] == ["ok"] * 3
