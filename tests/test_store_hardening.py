@@ -13,6 +13,7 @@ import builtins
 import errno
 import io
 import os
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -169,3 +170,145 @@ def test_cache_folder_that_cannot_be_made_warns_and_the_run_goes_on(tmp_path):
         embedded = _stub_embed(tmp_path / "in", paths, cache)
     assert len(_oddling_warnings(record)) == 1
     assert [r.status for r in embedded.records] == ["ok"] * 3
+
+
+# --- 2. damaged cache chunks ----------------------------------------------------------------------
+
+def _warm_cache(tmp_path, n=5):
+    from oddling.embedding.cache import EmbeddingCache
+
+    paths = _images(tmp_path / "in", n)
+    cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+    reference = _stub_embed(tmp_path / "in", paths, cache)
+    [chunk] = cache.folder.glob("chunk-*.npz")
+    return paths, reference, chunk
+
+
+def _rerun(tmp_path, paths, monkeypatch, dim=None):
+    """Open the cache again and embed the same files, counting images the network sees."""
+    from oddling.embedding.cache import EmbeddingCache
+    from test_hostile import _stub_backbone
+
+    seen = []
+    stub = _stub_backbone()
+    original = stub.embed
+    stub.embed = lambda batch: (seen.append(len(batch)), original(batch))[1]
+    monkeypatch.setattr("test_hostile._stub_backbone", lambda: stub)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub", dim=dim)
+        embedded = _stub_embed(tmp_path / "in", paths, cache)
+    return embedded, sum(seen), _oddling_warnings(record)
+
+
+def _rewrite_chunk(chunk: Path, **arrays):
+    with np.load(chunk, allow_pickle=False) as data:
+        content = {k: data[k] for k in data.files}
+    content.update(arrays)
+    with open(chunk, "wb") as f:
+        np.savez(f, **content)
+
+
+@pytest.mark.parametrize("damage", ["empty", "garbage", "truncated", "npy not npz", "no health",
+                                    "vectors too short", "health rows too long", "NaN vector", "2-D hashes"])
+def test_a_damaged_chunk_is_skipped_reported_once_and_recomputed(tmp_path, monkeypatch, damage):
+    paths, reference, chunk = _warm_cache(tmp_path)
+    with np.load(chunk, allow_pickle=False) as data:
+        vectors, health, hashes = data["vectors"], data["health"], data["sha256"]
+    if damage == "empty":
+        chunk.write_bytes(b"")
+    elif damage == "garbage":
+        chunk.write_bytes(os.urandom(300))
+    elif damage == "truncated":
+        chunk.write_bytes(chunk.read_bytes()[:200])
+    elif damage == "npy not npz":
+        np.save(open(chunk, "wb"), vectors)
+    elif damage == "no health":
+        with open(chunk, "wb") as f:
+            np.savez(f, sha256=hashes, vectors=vectors)
+    elif damage == "vectors too short":
+        _rewrite_chunk(chunk, vectors=np.ascontiguousarray(vectors[:, :2]))
+    elif damage == "health rows too long":
+        _rewrite_chunk(chunk, health=np.hstack([health, health]))
+    elif damage == "NaN vector":
+        _rewrite_chunk(chunk, vectors=np.where(np.arange(vectors.shape[1]) == 0, np.nan, vectors).astype(np.float32))
+    elif damage == "2-D hashes":
+        _rewrite_chunk(chunk, sha256=hashes.reshape(1, -1))
+    embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch, dim=4)
+    assert len(messages) == 1 and "damaged chunk" in messages[0], messages
+    assert n_embedded == len(paths)                     # nothing came from the damaged chunk
+    np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
+    assert not chunk.exists()                           # removed: the next run does not meet it again
+    _, n_again, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert n_again == 0 and messages == []              # and what was recomputed was cached
+
+
+
+def test_more_than_64_unreadable_chunks_do_not_crash_compaction(tmp_path, monkeypatch):
+    from oddling.embedding.cache import COMPACT_ABOVE, EmbeddingCache
+
+    folder = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub").folder
+    for i in range(COMPACT_ABOVE + 6):
+        (folder / f"chunk-{i:032x}.npz").write_bytes(b"" if i % 2 else b"PK\x03\x04 not a zip")
+    paths = _images(tmp_path / "in", 3)
+    embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch)   # raised "need at least one array"
+    assert len(messages) == 1 and f"and {COMPACT_ABOVE + 5} more" in messages[0]
+    assert n_embedded == 3 and [r.status for r in embedded.records] == ["ok"] * 3
+    assert len(list(folder.glob("chunk-*.npz"))) == 1          # only the new one
+
+
+def test_compaction_of_more_than_64_good_chunks_keeps_every_vector(tmp_path, monkeypatch):
+    import oddling.embedding.cache as cache_module
+    from oddling.embedding.cache import COMPACT_ABOVE, EmbeddingCache
+
+    monkeypatch.setattr(cache_module, "FLUSH_EVERY", 1)
+    paths = _images(tmp_path / "in", COMPACT_ABOVE + 2)
+    reference = _stub_embed(tmp_path / "in", paths, EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub"))
+    monkeypatch.undo()
+    embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert n_embedded == 0 and messages == []
+    np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
+    assert len(list((tmp_path / "cache" / "embeddings").glob("*/chunk-*.npz"))) == 1   # merged into one
+
+
+# --- 2. through the command line: one line and exit 2 for a damaged bank, a warning for the cache --
+
+def _cli(*args):
+    from click.testing import CliRunner
+
+    from oddling.cli import main
+
+    return CliRunner().invoke(main, [str(a) for a in args], catch_exceptions=False)
+
+
+@pytest.fixture()
+def pixel_bank(tmp_path):
+    """A bank of 12 tiny images with the pixels representation (no network, a second to fit)."""
+    _images(tmp_path / "refs", 12)
+    bank = tmp_path / "pix.bank"
+    result = _cli("fit", tmp_path / "refs", "--bank", bank, "--representation", "pixels:16", "--target-fpr", "0.2",
+                  "--cache-dir", tmp_path / "cache", "--quiet")
+    assert result.exit_code == 0, result.output
+    return bank
+
+
+def test_a_zero_byte_cache_chunk_is_a_warning_not_aborted(tmp_path, pixel_bank):
+    chunks = list((tmp_path / "cache" / "embeddings").glob("*/chunk-*.npz"))
+    assert chunks
+    for chunk in chunks:
+        chunk.write_bytes(b"")
+    result = _cli("score", tmp_path / "refs", "--bank", pixel_bank, "--out", tmp_path / "s.csv",
+                  "--cache-dir", tmp_path / "cache", "--quiet")
+    assert result.exit_code == 0, result.output              # was "Aborted!" (an EOFError), exit 1
+    assert result.stderr.count("warning: ") == 1 and "damaged chunk" in result.stderr
+    assert "Aborted" not in result.stderr
+
+
+@pytest.mark.parametrize("name", ["features.npy", "calibration_scores.npy", "health_stats.npy", "bank.json"])
+def test_a_zero_byte_bank_file_is_one_line_and_exit_2(tmp_path, pixel_bank, name):
+    (pixel_bank / name).write_bytes(b"")
+    result = _cli("score", tmp_path / "refs", "--bank", pixel_bank, "--out", tmp_path / "s.csv", "--quiet",
+                  "--cache-dir", tmp_path / "cache")
+    assert result.exit_code == 2
+    [line] = result.stderr.strip().splitlines()
+    assert line.startswith("Error: ") and name in line and "Traceback" not in result.output

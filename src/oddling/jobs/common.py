@@ -82,7 +82,7 @@ def embed_paths(base: Path, paths: list[Path], representation, options: RunOptio
     cache = None
     if options.use_cache and representation.cacheable:
         cache = EmbeddingCache.open(cache_dir(options.cache_dir), representation.cache_fingerprint(),
-                                    representation.runtime)
+                                    representation.runtime, dim=representation.embedding_dim)
     return embed_files(base, paths, representation, batch_size=options.batch_size, workers=options.workers,
                        progress=options.progress, desc=desc, cache=cache)
 
