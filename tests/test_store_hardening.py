@@ -201,10 +201,17 @@ def _rerun(tmp_path, paths, monkeypatch, dim=None):
     return embedded, sum(seen), _oddling_warnings(record)
 
 
-def _rewrite_chunk(chunk: Path, **arrays):
+def _rewrite_chunk(chunk: Path, sign: bool = False, **arrays):
+    """Change arrays of a chunk; with sign=True also sign it again with the cache's own key (what
+    only someone who can read the key file can do)."""
+    from oddling.embedding.cache import EmbeddingCache
+
     with np.load(chunk, allow_pickle=False) as data:
         content = {k: data[k] for k in data.files}
     content.update(arrays)
+    if sign:
+        signer = EmbeddingCache(chunk.parent)
+        content["mac"] = np.array(signer._signature(content["sha256"], content["vectors"], content["health"]))
     with open(chunk, "wb") as f:
         np.savez(f, **content)
 
@@ -231,7 +238,8 @@ def test_a_damaged_chunk_is_skipped_reported_once_and_recomputed(tmp_path, monke
     elif damage == "health rows too long":
         _rewrite_chunk(chunk, health=np.hstack([health, health]))
     elif damage == "NaN vector":
-        _rewrite_chunk(chunk, vectors=np.where(np.arange(vectors.shape[1]) == 0, np.nan, vectors).astype(np.float32))
+        _rewrite_chunk(chunk, sign=True,
+                       vectors=np.where(np.arange(vectors.shape[1]) == 0, np.nan, vectors).astype(np.float32))
     elif damage == "2-D hashes":
         _rewrite_chunk(chunk, sha256=hashes.reshape(1, -1))
     embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch, dim=4)
@@ -312,3 +320,100 @@ def test_a_zero_byte_bank_file_is_one_line_and_exit_2(tmp_path, pixel_bank, name
     assert result.exit_code == 2
     [line] = result.stderr.strip().splitlines()
     assert line.startswith("Error: ") and name in line and "Traceback" not in result.output
+
+
+# --- 3. cache poisoning ---------------------------------------------------------------------------
+
+def test_a_chunk_with_chosen_vectors_cannot_hide_an_image(tmp_path, monkeypatch):
+    paths, reference, chunk = _warm_cache(tmp_path)
+    with np.load(chunk, allow_pickle=False) as data:
+        vectors = data["vectors"]
+    # The attack: keep the content hashes, give every image the first image's vector (a normal-
+    # looking one), keep the arrays well formed. Without a signature it was trusted as it was.
+    _rewrite_chunk(chunk, vectors=np.repeat(vectors[:1], len(vectors), axis=0))
+    embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch, dim=4)
+    assert n_embedded == len(paths) and len(messages) == 1 and "signature does not match" in messages[0]
+    np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
+
+
+def test_an_unsigned_chunk_from_an_earlier_release_is_recomputed(tmp_path, monkeypatch):
+    paths, reference, chunk = _warm_cache(tmp_path)
+    with np.load(chunk, allow_pickle=False) as data:
+        content = {k: data[k] for k in ("sha256", "vectors", "health")}
+    with open(chunk, "wb") as f:
+        np.savez(f, **content)          # the chunk layout before signatures
+    embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert n_embedded == len(paths) and "not signed" in messages[0]
+    np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
+
+
+def test_a_chunk_moved_to_another_cache_key_does_not_verify(tmp_path, monkeypatch):
+    from oddling.embedding.cache import KEY_FILE, EmbeddingCache
+
+    paths, reference, chunk = _warm_cache(tmp_path)
+    other = EmbeddingCache.open(tmp_path / "cache", {"id": "other"}, "stub").folder
+    (other / KEY_FILE).write_bytes((chunk.parent / KEY_FILE).read_bytes())   # even with the same key
+    os.replace(chunk, other / chunk.name)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        moved = EmbeddingCache.open(tmp_path / "cache", {"id": "other"}, "stub")
+    assert moved.vectors == {} and "signature does not match" in _oddling_warnings(record)[0]
+
+
+def test_a_signed_chunk_must_still_hold_finite_and_if_asked_unit_vectors(tmp_path, monkeypatch):
+    from oddling.embedding.cache import EmbeddingCache
+
+    paths, reference, chunk = _warm_cache(tmp_path)
+    with np.load(chunk, allow_pickle=False) as data:
+        vectors = data["vectors"]
+    _rewrite_chunk(chunk, sign=True, vectors=vectors * 3)        # signed, but not unit length
+    loose = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+    assert len(loose.vectors) == len(paths)                       # unit_norm=False: taken as they are
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        strict = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub", unit_norm=True)
+    assert strict.vectors == {} and "not of unit length" in _oddling_warnings(record)[0]
+    strict.add("f" * 64, np.array([3.0, 0, 0, 0], np.float32), np.zeros(len(reference.health[0])))
+    strict.add("e" * 64, np.array([np.nan, 0, 0, 0], np.float32), np.zeros(len(reference.health[0])))
+    assert strict._pending_hashes == []                           # neither is saved
+    strict.add("d" * 64, np.array([0.6, 0.8, 0, 0], np.float32), np.zeros(len(reference.health[0])))
+    assert strict._pending_hashes == ["d" * 64]
+
+
+@pytest.mark.skipif(not hasattr(os, "geteuid"), reason="POSIX owners and modes")
+def test_the_key_is_made_private_on_first_use_even_with_an_open_umask(tmp_path):
+    from oddling.embedding.cache import KEY_BYTES, KEY_FILE, EmbeddingCache
+
+    old = os.umask(0)
+    try:
+        folder = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub").folder
+    finally:
+        os.umask(old)
+    info = (folder / KEY_FILE).stat()
+    assert oct(info.st_mode & 0o777) == oct(0o600) and info.st_uid == os.geteuid()
+    assert len((folder / KEY_FILE).read_bytes()) == KEY_BYTES
+    assert [p.name for p in folder.iterdir()] == [KEY_FILE]        # no temporary key file left
+
+
+@pytest.mark.skipif(not hasattr(os, "geteuid"), reason="POSIX owners and modes")
+@pytest.mark.parametrize("damage", ["readable by others", "wrong length", "symbolic link"])
+def test_a_key_that_is_not_private_is_replaced_and_its_chunks_recomputed(tmp_path, monkeypatch, damage):
+    from oddling.embedding.cache import KEY_FILE
+
+    paths, reference, chunk = _warm_cache(tmp_path)
+    key = chunk.parent / KEY_FILE
+    if damage == "readable by others":
+        key.chmod(0o644)
+    elif damage == "wrong length":
+        key.write_bytes(b"short")
+    else:
+        (tmp_path / "known.key").write_bytes(key.read_bytes())   # a key someone else can read
+        key.unlink()
+        key.symlink_to(tmp_path / "known.key")
+    embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert len(messages) == 1 and "a new key was made" in messages[0], messages
+    assert n_embedded == len(paths)
+    np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
+    assert not key.is_symlink() and oct(key.stat().st_mode & 0o777) == oct(0o600)
+    _, n_again, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert n_again == 0 and messages == []
