@@ -417,3 +417,93 @@ def test_a_key_that_is_not_private_is_replaced_and_its_chunks_recomputed(tmp_pat
     assert not key.is_symlink() and oct(key.stat().st_mode & 0o777) == oct(0o600)
     _, n_again, messages = _rerun(tmp_path, paths, monkeypatch)
     assert n_again == 0 and messages == []
+
+
+# --- 4. two writers of one bank -------------------------------------------------------------------
+
+def _child_env() -> dict:
+    import oddling
+
+    src = str(Path(oddling.__file__).resolve().parents[1])
+    return dict(os.environ, PYTHONPATH=os.pathsep.join([src] + [p for p in [os.environ.get("PYTHONPATH")] if p]))
+
+
+def _waiting_for_a_lock(pid: int) -> bool:
+    """Whether process `pid` is blocked waiting for a file lock, as the kernel lists it in
+    /proc/locks (a line "N: -> FLOCK ADVISORY WRITE <pid> ..." for each waiter; proc(5))."""
+    with open("/proc/locks") as f:
+        return any(len(parts) > 5 and parts[1] == "->" and parts[5] == str(pid)
+                   for parts in (line.split() for line in f))
+
+
+def _wait_until_blocked_or_done(proc) -> None:
+    import time
+
+    for _ in range(6000):        # a bound so a broken build fails instead of hanging; not a timing check
+        if proc.poll() is not None or _waiting_for_a_lock(proc.pid):
+            return
+        time.sleep(0.05)
+    raise AssertionError("the second writer neither finished nor waited for the lock")
+
+
+needs_proc_locks = pytest.mark.skipif(not os.path.exists("/proc/locks"), reason="needs Linux /proc/locks")
+
+
+@needs_proc_locks
+def test_bank_lock_makes_a_second_process_wait_and_leaves_no_lock_file(tmp_path):
+    import subprocess
+    import sys
+
+    from oddling.bank.store import bank_lock, lock_path
+
+    bank = tmp_path / "b.bank"
+    script = ("import sys; from oddling.bank.store import bank_lock\n"
+              "with bank_lock(sys.argv[1]):\n    print(open(sys.argv[2]).read())\n")
+    note = tmp_path / "note"
+    note.write_text("before")
+    with bank_lock(bank):
+        with bank_lock(bank):      # re-entrant: save_bank inside bank add takes it again
+            assert lock_path(bank).exists()
+        child = subprocess.Popen([sys.executable, "-c", script, str(bank), str(note)], stdout=subprocess.PIPE,
+                                 text=True, env=_child_env())
+        _wait_until_blocked_or_done(child)
+        assert child.poll() is None            # it waits: we hold the lock
+        note.write_text("after")               # what the holder wrote before releasing
+    out, _ = child.communicate()
+    assert child.returncode == 0 and out.strip() == "after"
+    assert not lock_path(bank).exists()
+
+
+@needs_proc_locks
+def test_two_bank_adds_at_once_keep_both_sides(tmp_path, monkeypatch, pixel_bank):
+    import subprocess
+    import sys
+
+    import oddling
+    import oddling.jobs.maintenance as maintenance
+    from oddling.bank.store import load_bank
+
+    ours = _images(tmp_path / "ours", 3, seed=1)
+    theirs = _images(tmp_path / "theirs", 3, seed=2)
+    real_save = maintenance.save_bank
+    started = []
+
+    def save_while_another_writer_runs(bank, path, force=False):
+        # Between our read of the bank and our save, a second `bank add` starts in another
+        # process. Without the lock it read the old bank too, and one of the two saves was lost.
+        child = subprocess.Popen(
+            [sys.executable, "-m", "oddling.cli", "bank", "add", str(pixel_bank), str(tmp_path / "theirs"),
+             "--quiet", "--cache-dir", str(tmp_path / "cache")],
+            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=_child_env())
+        started.append(child)
+        _wait_until_blocked_or_done(child)
+        return real_save(bank, path, force)
+
+    monkeypatch.setattr(maintenance, "save_bank", save_while_another_writer_runs)
+    oddling.bank_add(pixel_bank, tmp_path / "ours", options=oddling.RunOptions(progress=False,
+                                                                                cache_dir=tmp_path / "cache"))
+    [child] = started
+    out, err = child.communicate()
+    assert child.returncode == 0, err
+    paths = {Path(r["path"]).name for r in load_bank(pixel_bank).references}
+    assert {p.name for p in ours + theirs} <= paths and len(paths) == 12 + 6

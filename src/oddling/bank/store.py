@@ -7,16 +7,23 @@ that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
 """
 from __future__ import annotations
 
+import contextlib
 import errno
 import json
 import math
 import os
 import shutil
 import tempfile
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+
+try:
+    import fcntl
+except ImportError:      # Windows: no flock; writers are not serialised there
+    fcntl = None
 
 from oddling.detectors import make_detector
 from oddling.detectors.base import Detector
@@ -109,6 +116,74 @@ class Bank:
         }
 
 
+_held: dict[str, list] = {}          # lock file -> [threading.RLock, file descriptor or None, depth]
+_held_guard = threading.Lock()
+
+
+def lock_path(path: str | os.PathLike) -> Path:
+    """The lock file of a bank: `.<name>.lock` beside it (the bank folder itself is replaced)."""
+    target = Path(os.path.abspath(path))
+    return target.with_name(f".{target.name}.lock")
+
+
+@contextlib.contextmanager
+def bank_lock(path: str | os.PathLike):
+    """Hold the exclusive lock of the bank at `path`: one writer at a time (POSIX flock(2)).
+
+    Re-entrant within a process (save_bank takes it again inside bank add), and threads of one
+    process take turns. The lock file is removed on release; a waiter that then holds a lock on
+    the removed file notices (the path no longer names the file it locked) and tries again, so
+    two writers never both hold it. Without fcntl (Windows) writers are not serialised.
+    """
+    lock = lock_path(path)
+    with _held_guard:
+        entry = _held.setdefault(str(lock), [threading.RLock(), None, 0])
+    entry[0].acquire()
+    try:
+        if entry[2] == 0:
+            entry[1] = _acquire_file_lock(lock)
+        entry[2] += 1
+        try:
+            yield lock
+        finally:
+            entry[2] -= 1
+            if entry[2] == 0 and entry[1] is not None:
+                fd, entry[1] = entry[1], None
+                try:
+                    os.unlink(lock)       # while still holding it: see the docstring
+                except OSError:
+                    pass
+                os.close(fd)
+    finally:
+        entry[0].release()
+
+
+def _acquire_file_lock(lock: Path) -> int | None:
+    if fcntl is None:
+        return None
+    if not lock.parent.is_dir():
+        return None        # no folder, so no bank to replace: whoever creates one locks then
+    try:
+        while True:
+            fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o666)
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX)
+                mine = os.fstat(fd)
+                now = os.stat(lock)
+            except FileNotFoundError:      # removed by the previous holder as we got it
+                os.close(fd)
+                continue
+            except BaseException:
+                os.close(fd)
+                raise
+            if (mine.st_dev, mine.st_ino) == (now.st_dev, now.st_ino):
+                return fd
+            os.close(fd)                   # we locked a file that has since been replaced
+    except OSError as exc:
+        raise OddlingError(f"cannot lock the bank {lock.parent / lock.name[1:-5]} for writing "
+                           f"({exc.strerror or exc} on {lock})") from exc
+
+
 def is_bank(path: Path) -> bool:
     return (Path(path) / METADATA_FILE).is_file()
 
@@ -120,6 +195,17 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
     bank, if any, as it was, and no temporary files.
     """
     target = Path(path)
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
+    with bank_lock(target):
+        _save_locked(bank, target, force)
+    bank.path = target
+    return target
+
+
+def _save_locked(bank: Bank, target: Path, force: bool) -> None:
     if target.exists():
         if not force:
             raise OddlingError(f"{target} already exists; pass --force to replace it")
@@ -127,7 +213,6 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
             raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
     tmp = None
     try:
-        target.parent.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-"))
         _write_files(bank, tmp)
         if target.exists():
@@ -149,8 +234,6 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
         if isinstance(exc, OSError):
             raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
         raise
-    bank.path = target
-    return target
 
 
 def _write_failure(what: str, exc: OSError) -> str:

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 
-from oddling.bank.store import Bank, load_bank, save_bank
+from oddling.bank.store import Bank, bank_lock, load_bank, save_bank
 from oddling.data.intake import discover
 from oddling.detectors.conformal import smallest_supported_rate
 from oddling.embedding.runner import OK
@@ -79,9 +79,14 @@ def bank_add(
 
     Only files whose content is not in the bank yet are embedded; the detector is refitted and
     recalibrated; the bank is replaced atomically (the old one stays in place until the new one
-    is complete).
+    is complete). The bank's lock is held from reading it to saving it, so two `bank add`s (or
+    an add and a remove) never lose one side's update: the second waits, then reads the first's.
     """
-    options = options or RunOptions()
+    with bank_lock(bank_path):
+        return _bank_add(bank_path, source, root, options or RunOptions())
+
+
+def _bank_add(bank_path, source, root, options: RunOptions) -> dict:
     bank = load_bank(bank_path)
     require_features(bank, "bank add")
     source = Path(source)
@@ -115,16 +120,19 @@ def bank_add(
 
 
 def bank_remove(bank_path: str | os.PathLike, paths: list[str]) -> dict:
-    """Remove references by their bank path (as `bank info` / `audit` print them); refit and recalibrate."""
-    bank = load_bank(bank_path)
-    require_features(bank, "bank remove")
-    wanted = set(paths)
-    keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
-    found = {bank.references[i]["path"] for i in range(bank.size)} & wanted
-    not_found = sorted(wanted - found)
-    if found:
-        refit(bank, [bank.references[i] for i in keep], bank.features[keep], bank.health_stats[keep])
-        save_bank(bank, bank_path, force=True)
+    """Remove references by their bank path (as `bank info` / `audit` print them); refit and recalibrate.
+
+    Under the bank's lock, from reading to saving, like `bank_add`."""
+    with bank_lock(bank_path):
+        bank = load_bank(bank_path)
+        require_features(bank, "bank remove")
+        wanted = set(paths)
+        keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
+        found = {bank.references[i]["path"] for i in range(bank.size)} & wanted
+        not_found = sorted(wanted - found)
+        if found:
+            refit(bank, [bank.references[i] for i in keep], bank.features[keep], bank.health_stats[keep])
+            save_bank(bank, bank_path, force=True)
     return {"removed": len(found), "not_found": not_found, "n_references": bank.size}
 
 
