@@ -507,3 +507,93 @@ def test_two_bank_adds_at_once_keep_both_sides(tmp_path, monkeypatch, pixel_bank
     assert child.returncode == 0, err
     paths = {Path(r["path"]).name for r in load_bank(pixel_bank).references}
     assert {p.name for p in ours + theirs} <= paths and len(paths) == 12 + 6
+
+
+# --- 5. a crash between the two renames of a save -------------------------------------------------
+
+CRASHING_SAVE = """
+import os, shutil, sys
+import oddling.bank.store as store
+from test_bank import small_bank
+
+target, where = sys.argv[1], sys.argv[2]
+real_replace, real_rmtree = os.replace, shutil.rmtree
+
+def replace(src, dst):
+    if where == "between renames" and ".writing-" in os.fspath(src) and os.path.exists(os.fspath(src)) \\
+            and not os.path.exists(dst):
+        os._exit(137)                     # as if killed (-9) after the bank was moved aside
+    return real_replace(src, dst)
+
+def rmtree(path, *a, **k):
+    if where == "after renames" and ".old-" in os.fspath(path):
+        os._exit(137)                     # killed after the new bank is in place
+    return real_rmtree(path, *a, **k)
+
+store.os.replace, store.shutil.rmtree = replace, rmtree
+bank = small_bank()
+bank.tool_version = "2.0.0"
+store.save_bank(bank, target, force=True)
+"""
+
+
+def _crash_a_save(tmp_path, where: str) -> Path:
+    import subprocess
+    import sys
+
+    from oddling.bank.store import save_bank
+    from test_bank import small_bank
+
+    target = tmp_path / "b"
+    save_bank(small_bank(), target)                  # tool_version 0.1.0
+    env = _child_env()
+    env["PYTHONPATH"] += os.pathsep + str(Path(__file__).parent)
+    done = subprocess.run([sys.executable, "-c", CRASHING_SAVE, str(target), where], env=env)
+    assert done.returncode == 137
+    return target
+
+
+def test_a_crash_between_the_two_renames_is_undone_on_the_next_load(tmp_path):
+    from oddling.bank.store import load_bank
+    from oddling.jobs.common import OddlingWarning
+
+    target = _crash_a_save(tmp_path, "between renames")
+    assert not target.exists()                                         # the state the crash left
+    assert any(n.startswith(".b.old-") for n in os.listdir(tmp_path))
+    with pytest.warns(OddlingWarning, match="half replaced"):
+        bank = load_bank(target)
+    assert bank.tool_version == "0.1.0"                               # the bank before the failed save
+    assert os.listdir(tmp_path) == ["b"]                               # no .writing-*, no .old-*, no lock
+
+
+def test_a_crash_between_the_two_renames_is_undone_by_the_next_save(tmp_path):
+    from oddling.bank.store import load_bank, save_bank
+    from test_bank import small_bank
+
+    target = _crash_a_save(tmp_path, "between renames")
+    with pytest.warns(Warning), pytest.raises(OddlingError, match="already exists"):
+        save_bank(small_bank(), target)                                # the old bank is back: needs --force
+    assert load_bank(target).tool_version == "0.1.0"
+    assert os.listdir(tmp_path) == ["b"]
+
+
+def test_leftovers_of_a_crash_after_the_renames_are_cleaned_by_the_next_save(tmp_path):
+    from oddling.bank.store import load_bank, save_bank
+    from test_bank import small_bank
+
+    target = _crash_a_save(tmp_path, "after renames")
+    assert load_bank(target).tool_version == "2.0.0"                   # the new bank made it
+    assert any(n.startswith(".b.old-") for n in os.listdir(tmp_path))
+    save_bank(small_bank(), target, force=True)
+    assert not [n for n in os.listdir(tmp_path) if ".old-" in n or ".writing-" in n]
+
+
+def test_leftovers_of_a_live_writer_are_not_touched(tmp_path):
+    from oddling.bank.store import save_bank
+    from test_bank import small_bank
+
+    save_bank(small_bank(), tmp_path / "b")
+    live = tmp_path / f".b.writing-{os.getppid()}-x"                   # the parent process: alive
+    live.mkdir()
+    save_bank(small_bank(), tmp_path / "b", force=True)
+    assert live.is_dir()

@@ -4,6 +4,10 @@ Format version 2 records the representation and the detector (name, parameters, 
 version-1 banks (one kNN or patch mode, from earlier releases) still load. Saved into a
 temporary sibling folder and renamed into place, so a crash never leaves a half-written bank
 that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
+
+Writers of one bank take turns under an OS file lock (`bank_lock`, flock(2) on `.NAME.lock`
+beside the bank). A save that stopped between its two renames is undone by the next reader or
+writer (`recover`): the bank as it was before that save is put back.
 """
 from __future__ import annotations
 
@@ -12,6 +16,7 @@ import errno
 import json
 import math
 import os
+import re
 import shutil
 import tempfile
 import threading
@@ -206,6 +211,7 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
 
 
 def _save_locked(bank: Bank, target: Path, force: bool) -> None:
+    recover(target)
     if target.exists():
         if not force:
             raise OddlingError(f"{target} already exists; pass --force to replace it")
@@ -213,7 +219,7 @@ def _save_locked(bank: Bank, target: Path, force: bool) -> None:
             raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
     tmp = None
     try:
-        tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-"))
+        tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-{os.getpid()}-"))
         _write_files(bank, tmp)
         if target.exists():
             if (target / HISTORY_FILE).is_file():
@@ -234,6 +240,81 @@ def _save_locked(bank: Bank, target: Path, force: bool) -> None:
         if isinstance(exc, OSError):
             raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
         raise
+
+
+_LEFTOVER = re.compile(r"(writing|old)-(\d+)(-.*)?")
+
+
+def _leftovers(target: Path) -> list[tuple[str, int, Path]]:
+    """(kind, owning PID, path) of what an interrupted save of `target` can leave beside it:
+    `.NAME.writing-PID-*` (a new bank being written) and `.NAME.old-PID` (the bank it replaces,
+    moved aside for the second rename)."""
+    prefix = f".{target.name}."
+    try:
+        names = [n for n in os.listdir(target.parent) if n.startswith(prefix)]
+    except OSError:
+        return []
+    found = []
+    for name in names:
+        match = _LEFTOVER.fullmatch(name[len(prefix):])
+        if match and (match.group(1) == "writing" or match.group(3) is None):
+            found.append((match.group(1), int(match.group(2)), target.parent / name))
+    return found
+
+
+def _pid_alive(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:        # exists, but not ours to signal
+        return True
+    try:                   # a killed child its parent has not reaped yet is dead too
+        with open(f"/proc/{pid}/stat", "rb") as f:
+            return f.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
+    except (OSError, IndexError):
+        return True
+
+
+def recover(target: str | os.PathLike) -> None:
+    """Finish what an interrupted save left; call with the bank's lock held.
+
+    A save replaces a bank with two renames: the bank to `.NAME.old-PID`, then the new one from
+    `.NAME.writing-PID-*` to NAME. A crash between the two leaves no bank at NAME; then the old
+    bank is put back (the save that stopped never said it succeeded, so the bank is as it was
+    before that command). Leftovers of processes that are no longer running are removed.
+    """
+    target = Path(target)
+    found = _leftovers(target)
+    if not found:
+        return
+    if not target.exists():
+        olds = sorted((p for kind, _, p in found if kind == "old" and is_bank(p)), key=_mtime)
+        if olds:
+            os.replace(olds[-1], target)
+            _warn(f"bank {target} had been left half replaced by a write that stopped; the bank as it was before "
+                  "that write is back in place")
+            found = _leftovers(target)
+    for kind, pid, path in found:
+        if not _pid_alive(pid):
+            shutil.rmtree(path, ignore_errors=True)
+
+
+def _mtime(path: Path) -> float:
+    try:
+        return path.stat().st_mtime
+    except OSError:
+        return 0.0
+
+
+def _warn(message: str) -> None:
+    import warnings
+
+    from oddling.jobs.common import OddlingWarning   # lazily: jobs sit above the bank
+
+    warnings.warn(message, OddlingWarning, stacklevel=3)
 
 
 def _write_failure(what: str, exc: OSError) -> str:
@@ -323,6 +404,9 @@ def _check_calibration(f: _Fields, calibration: dict, scores: np.ndarray) -> Non
 def load_bank(path: str | os.PathLike) -> Bank:
     folder = Path(path)
     meta_path = folder / METADATA_FILE
+    if not folder.exists() and _leftovers(folder):
+        with bank_lock(folder):      # a save that stopped between its two renames: put the bank back
+            recover(folder)
     if not meta_path.is_file():
         raise OddlingError(f"{folder} is not an oddling bank (no {METADATA_FILE}); create one with `oddling fit`")
     try:
