@@ -51,7 +51,8 @@ def test_existing_bank_not_replaced_without_force(tmp_path):
     with pytest.raises(OddlingError, match="already exists"):
         save_bank(small_bank(), tmp_path / "b")
     save_bank(small_bank(), tmp_path / "b", force=True)
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["b"]   # no temporary folders left behind
+    # no temporary folders or lock file left behind; the replaced bank is kept for `bank undo`
+    assert sorted(p.name for p in tmp_path.iterdir()) == [".b.previous", "b"]
 
 
 def test_force_never_replaces_a_folder_that_is_not_a_bank(tmp_path):

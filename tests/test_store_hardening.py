@@ -512,25 +512,21 @@ def test_two_bank_adds_at_once_keep_both_sides(tmp_path, monkeypatch, pixel_bank
 # --- 5. a crash between the two renames of a save -------------------------------------------------
 
 CRASHING_SAVE = """
-import os, shutil, sys
+import os, sys
 import oddling.bank.store as store
 from test_bank import small_bank
 
 target, where = sys.argv[1], sys.argv[2]
-real_replace, real_rmtree = os.replace, shutil.rmtree
+real_replace = os.replace
 
 def replace(src, dst):
-    if where == "between renames" and ".writing-" in os.fspath(src) and os.path.exists(os.fspath(src)) \\
-            and not os.path.exists(dst):
+    if where == "between renames" and ".writing-" in os.fspath(src) and not os.path.exists(dst):
         os._exit(137)                     # as if killed (-9) after the bank was moved aside
+    if where == "after renames" and ".old-" in os.fspath(src):
+        os._exit(137)                     # killed after the new bank is in place
     return real_replace(src, dst)
 
-def rmtree(path, *a, **k):
-    if where == "after renames" and ".old-" in os.fspath(path):
-        os._exit(137)                     # killed after the new bank is in place
-    return real_rmtree(path, *a, **k)
-
-store.os.replace, store.shutil.rmtree = replace, rmtree
+store.os.replace = replace
 bank = small_bank()
 bank.tool_version = "2.0.0"
 store.save_bank(bank, target, force=True)
@@ -577,15 +573,18 @@ def test_a_crash_between_the_two_renames_is_undone_by_the_next_save(tmp_path):
     assert os.listdir(tmp_path) == ["b"]
 
 
-def test_leftovers_of_a_crash_after_the_renames_are_cleaned_by_the_next_save(tmp_path):
+def test_a_crash_after_the_renames_leaves_the_replaced_bank_as_the_previous_version(tmp_path):
+    import oddling
     from oddling.bank.store import load_bank, save_bank
     from test_bank import small_bank
 
     target = _crash_a_save(tmp_path, "after renames")
     assert load_bank(target).tool_version == "2.0.0"                   # the new bank made it
     assert any(n.startswith(".b.old-") for n in os.listdir(tmp_path))
+    oddling.bank_undo(target)                                          # the leftover is the previous version
+    assert load_bank(target).tool_version == "0.1.0"
     save_bank(small_bank(), target, force=True)
-    assert not [n for n in os.listdir(tmp_path) if ".old-" in n or ".writing-" in n]
+    assert sorted(os.listdir(tmp_path)) == [".b.previous", "b"]
 
 
 def test_leftovers_of_a_live_writer_are_not_touched(tmp_path):
@@ -597,3 +596,118 @@ def test_leftovers_of_a_live_writer_are_not_touched(tmp_path):
     live.mkdir()
     save_bank(small_bank(), tmp_path / "b", force=True)
     assert live.is_dir()
+
+
+# --- 6. the previous bank is kept, and `bank undo` puts it back ----------------------------------
+
+def _versions(tmp_path, *versions):
+    from oddling.bank.store import save_bank
+    from test_bank import small_bank
+
+    for i, version in enumerate(versions):
+        bank = small_bank()
+        bank.tool_version = version
+        save_bank(bank, tmp_path / "b", force=i > 0)
+    return tmp_path / "b"
+
+
+def test_a_replaced_bank_is_kept_one_level_deep(tmp_path):
+    from oddling.bank.store import load_bank, previous_path
+
+    target = _versions(tmp_path, "1", "2", "3")
+    assert load_bank(target).tool_version == "3"
+    assert load_bank(previous_path(target)).tool_version == "2"        # "1" is gone: one level only
+    assert sorted(os.listdir(tmp_path)) == [".b.previous", "b"]
+
+
+def test_bank_undo_swaps_in_the_previous_version_and_again_swaps_back(tmp_path):
+    import oddling
+    from oddling.bank.store import HISTORY_FILE, load_bank, previous_path
+
+    target = _versions(tmp_path, "1", "2")
+    (target / HISTORY_FILE).write_text('{"check": 1}\n')
+    result = oddling.bank_undo(target)
+    assert result["n_references"] == 6 and load_bank(target).tool_version == "1"
+    assert load_bank(previous_path(target)).tool_version == "2"
+    assert (target / HISTORY_FILE).read_text() == '{"check": 1}\n'     # the drift history stays in place
+    oddling.bank_undo(target)
+    assert load_bank(target).tool_version == "2"
+    assert sorted(os.listdir(tmp_path)) == [".b.previous", "b"]
+
+
+def test_bank_undo_without_a_previous_version_is_a_clear_error(tmp_path):
+    import oddling
+
+    target = _versions(tmp_path, "1")
+    with pytest.raises(OddlingError, match="no previous version"):
+        oddling.bank_undo(target)
+
+
+def test_bank_undo_refuses_a_damaged_previous_version_and_moves_nothing(tmp_path):
+    import oddling
+    from oddling.bank.store import load_bank, previous_path
+
+    target = _versions(tmp_path, "1", "2")
+    (previous_path(target) / "features.npy").write_bytes(b"")
+    with pytest.raises(OddlingError, match="damaged"):
+        oddling.bank_undo(target)
+    assert load_bank(target).tool_version == "2"
+
+
+def test_bank_add_remove_and_fit_force_keep_the_previous_bank_for_undo(tmp_path, pixel_bank):
+    from oddling.bank.store import load_bank
+
+    before = {r["path"] for r in load_bank(pixel_bank).references}
+    _images(tmp_path / "more", 2, seed=5)
+    assert _cli("bank", "add", pixel_bank, tmp_path / "more", "--quiet", "--cache-dir", tmp_path / "cache").exit_code == 0
+    assert len(load_bank(pixel_bank).references) == 14
+    result = _cli("bank", "undo", pixel_bank)
+    assert result.exit_code == 0 and "Restored the previous version" in result.stderr
+    assert {r["path"] for r in load_bank(pixel_bank).references} == before
+    removed = sorted(before)[0]
+    assert _cli("bank", "remove", pixel_bank, removed).exit_code == 0
+    assert _cli("bank", "undo", pixel_bank).exit_code == 0
+    assert {r["path"] for r in load_bank(pixel_bank).references} == before
+    _images(tmp_path / "other", 12, seed=6)
+    refit = _cli("fit", tmp_path / "other", "--bank", pixel_bank, "--representation", "pixels:16", "--force",
+                 "--target-fpr", "0.2", "--quiet", "--cache-dir", tmp_path / "cache")
+    assert refit.exit_code == 0, refit.output
+    assert {r["path"] for r in load_bank(pixel_bank).references} != before
+    assert _cli("bank", "undo", pixel_bank).exit_code == 0
+    assert {r["path"] for r in load_bank(pixel_bank).references} == before
+
+
+def test_bank_undo_on_a_folder_without_a_bank_is_exit_2(tmp_path):
+    result = _cli("bank", "undo", tmp_path / "nothing.bank")
+    assert result.exit_code == 2 and result.stderr.startswith("Error: ") and "no previous version" in result.stderr
+
+
+CRASHING_UNDO = """
+import os, sys
+import oddling.bank.store as store
+
+target = sys.argv[1]
+real_replace = os.replace
+
+def replace(src, dst):
+    if os.fspath(src).endswith(".previous") and not os.path.exists(dst):
+        os._exit(137)                     # killed after the bank was moved aside
+    return real_replace(src, dst)
+
+store.os.replace = replace
+store.restore_previous(target)
+"""
+
+
+def test_a_crash_in_the_middle_of_undo_leaves_the_bank_as_it_was(tmp_path):
+    import subprocess
+    import sys
+
+    from oddling.bank.store import load_bank, previous_path
+
+    target = _versions(tmp_path, "1", "2")
+    done = subprocess.run([sys.executable, "-c", CRASHING_UNDO, str(target)], env=_child_env())
+    assert done.returncode == 137 and not target.exists()
+    with pytest.warns(Warning, match="half replaced"):
+        assert load_bank(target).tool_version == "2"
+    assert load_bank(previous_path(target)).tool_version == "1"

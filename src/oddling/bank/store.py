@@ -7,7 +7,9 @@ that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
 
 Writers of one bank take turns under an OS file lock (`bank_lock`, flock(2) on `.NAME.lock`
 beside the bank). A save that stopped between its two renames is undone by the next reader or
-writer (`recover`): the bank as it was before that save is put back.
+writer (`recover`): the bank as it was before that save is put back. The version a save
+replaces is kept, one level deep, as `.NAME.previous` beside the bank; `restore_previous` swaps
+the two (`oddling bank undo`).
 """
 from __future__ import annotations
 
@@ -231,7 +233,7 @@ def _save_locked(bank: Bank, target: Path, force: bool) -> None:
             except BaseException:
                 os.replace(old, target)
                 raise
-            shutil.rmtree(old, ignore_errors=True)
+            _keep_as_previous(target, old)
         else:
             os.replace(tmp, target)
     except BaseException as exc:
@@ -242,7 +244,65 @@ def _save_locked(bank: Bank, target: Path, force: bool) -> None:
         raise
 
 
-_LEFTOVER = re.compile(r"(writing|old)-(\d+)(-.*)?")
+_LEFTOVER = re.compile(r"(writing|old|discard)-(\d+)(-.*)?")
+
+
+def previous_path(path: str | os.PathLike) -> Path:
+    """Where the version a save replaced is kept: `.NAME.previous` beside the bank (one level)."""
+    target = Path(path)
+    return target.with_name(f".{target.name}.previous")
+
+
+def _keep_as_previous(target: Path, old: Path) -> None:
+    """`old` (the bank just replaced, moved aside) becomes the previous version; the one before goes."""
+    if not is_bank(old):
+        shutil.rmtree(old, ignore_errors=True)     # an empty folder that --force replaced
+        return
+    previous = previous_path(target)
+    if previous.exists():
+        discard = target.with_name(f".{target.name}.discard-{os.getpid()}")
+        os.replace(previous, discard)
+        os.replace(old, previous)
+        shutil.rmtree(discard, ignore_errors=True)
+    else:
+        os.replace(old, previous)
+
+
+def restore_previous(path: str | os.PathLike) -> Bank:
+    """Swap the bank at `path` with its previous version (so a second call swaps them back).
+
+    Under the bank's lock; the previous version is checked in full before anything moves. The
+    drift history stays with the bank in place. Done with renames like a save, so a crash
+    midway is put right by `recover`: either the swap did not happen or it is complete.
+    """
+    target = Path(path)
+    previous = previous_path(target)
+    with bank_lock(target):
+        recover(target)
+        if not is_bank(previous):
+            raise OddlingError(f"bank {target} has no previous version to go back to (one is kept when `bank add`, "
+                               "`bank remove` or `fit --force` replace a bank)")
+        load_bank(previous)
+        try:
+            if not target.exists():
+                os.replace(previous, target)
+            else:
+                if not is_bank(target):
+                    raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
+                if (target / HISTORY_FILE).is_file():
+                    shutil.copy2(target / HISTORY_FILE, previous / HISTORY_FILE)
+                old = target.with_name(f".{target.name}.old-{os.getpid()}")
+                os.replace(target, old)
+                try:
+                    os.replace(previous, target)
+                except BaseException:
+                    os.replace(old, target)
+                    raise
+                os.replace(old, previous)
+        except OSError as exc:
+            raise OddlingError(f"could not restore the previous version of bank {target} "
+                               f"({exc.strerror or exc})") from exc
+        return load_bank(target)
 
 
 def _leftovers(target: Path) -> list[tuple[str, int, Path]]:
@@ -282,9 +342,11 @@ def recover(target: str | os.PathLike) -> None:
     """Finish what an interrupted save left; call with the bank's lock held.
 
     A save replaces a bank with two renames: the bank to `.NAME.old-PID`, then the new one from
-    `.NAME.writing-PID-*` to NAME. A crash between the two leaves no bank at NAME; then the old
-    bank is put back (the save that stopped never said it succeeded, so the bank is as it was
-    before that command). Leftovers of processes that are no longer running are removed.
+    `.NAME.writing-PID-*` to NAME; then the old one becomes `.NAME.previous`. A crash between
+    the two renames leaves no bank at NAME; then the old bank is put back (the save that stopped
+    never said it succeeded, so the bank is as it was before that command). A crash after them
+    leaves `.NAME.old-PID` beside the new bank; it becomes the previous version. Other leftovers
+    of processes that are no longer running (`.writing-*`, `.discard-*`) are removed.
     """
     target = Path(target)
     found = _leftovers(target)
@@ -297,8 +359,13 @@ def recover(target: str | os.PathLike) -> None:
             _warn(f"bank {target} had been left half replaced by a write that stopped; the bank as it was before "
                   "that write is back in place")
             found = _leftovers(target)
-    for kind, pid, path in found:
-        if not _pid_alive(pid):
+    stale = [(kind, path) for kind, pid, path in found if not _pid_alive(pid)]
+    olds = sorted((p for kind, p in stale if kind == "old" and is_bank(p)), key=_mtime)
+    if olds and is_bank(target):
+        # Stopped after the new bank was in place: what it replaced becomes the previous version.
+        _keep_as_previous(target, olds[-1])
+    for kind, path in stale:
+        if path.exists():
             shutil.rmtree(path, ignore_errors=True)
 
 

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 
-from oddling.bank.store import Bank, bank_lock, load_bank, save_bank
+from oddling.bank.store import Bank, bank_lock, load_bank, previous_path, restore_previous, save_bank
 from oddling.data.intake import discover
 from oddling.detectors.conformal import smallest_supported_rate
 from oddling.embedding.runner import OK
@@ -134,6 +134,18 @@ def bank_remove(bank_path: str | os.PathLike, paths: list[str]) -> dict:
             refit(bank, [bank.references[i] for i in keep], bank.features[keep], bank.health_stats[keep])
             save_bank(bank, bank_path, force=True)
     return {"removed": len(found), "not_found": not_found, "n_references": bank.size}
+
+
+def bank_undo(bank_path: str | os.PathLike) -> dict:
+    """Put back the version of a bank that the last `bank add`, `bank remove` or `fit --force`
+    replaced; the replaced one becomes the previous version, so undoing twice is a redo.
+
+    One level only: each save keeps just the version it replaced (`.NAME.previous` beside the
+    bank). Under the bank's lock, like every writer.
+    """
+    bank = restore_previous(bank_path)
+    return {"path": str(bank.path), "created": bank.created, "n_references": bank.size,
+            "previous": str(previous_path(bank_path))}
 
 
 def bank_info(bank_path: str | os.PathLike) -> dict:
