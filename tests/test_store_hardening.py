@@ -711,3 +711,41 @@ def test_a_crash_in_the_middle_of_undo_leaves_the_bank_as_it_was(tmp_path):
     with pytest.warns(Warning, match="half replaced"):
         assert load_bank(target).tool_version == "2"
     assert load_bank(previous_path(target)).tool_version == "1"
+
+
+# --- 7. SIGTERM is Ctrl-C; bank folders follow the umask ------------------------------------------
+
+@pytest.mark.skipif(not hasattr(os, "geteuid"), reason="POSIX signals")
+def test_sigterm_stops_fit_like_ctrl_c_and_the_cache_keeps_the_finished_work(tmp_path):
+    import re
+    import signal
+    import subprocess
+    import sys
+
+    from oddling.embedding.cache import EmbeddingCache
+
+    _images(tmp_path / "refs", 300, size=(32, 32))
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "oddling.cli", "fit", str(tmp_path / "refs"), "--bank", str(tmp_path / "b.bank"),
+         "--runtime", "torch", "--batch-size", "8", "--workers", "1", "--cache-dir", str(tmp_path / "cache")],
+        stderr=subprocess.PIPE, env=_child_env())
+    seen = b""
+    while True:               # wait (on the progress bar, no clock) until some images are embedded
+        byte = proc.stderr.read(1)
+        if not byte:
+            break
+        seen += byte
+        done = [int(n) for n in re.findall(rb"(\d+)/300", seen)]
+        if done and max(done) >= 16:
+            proc.send_signal(signal.SIGTERM)
+            break
+    rest = proc.stderr.read()
+    proc.wait()
+    assert proc.returncode == 130, (seen + rest).decode(errors="replace")[-2000:]
+    assert b"Interrupted." in rest and b"Traceback" not in seen + rest
+    assert not (tmp_path / "b.bank").exists()
+    [folder] = (tmp_path / "cache" / "embeddings").iterdir()
+    cache = EmbeddingCache(folder)
+    cache._load()
+    assert len(cache.vectors) >= 16                      # flushed on the way out
+    assert not [p for p in folder.iterdir() if "partial" in p.name]
