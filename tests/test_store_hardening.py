@@ -749,3 +749,19 @@ def test_sigterm_stops_fit_like_ctrl_c_and_the_cache_keeps_the_finished_work(tmp
     cache._load()
     assert len(cache.vectors) >= 16                      # flushed on the way out
     assert not [p for p in folder.iterdir() if "partial" in p.name]
+
+
+@pytest.mark.skipif(not hasattr(os, "geteuid"), reason="POSIX modes")
+@pytest.mark.parametrize("umask, mode", [(0o022, 0o755), (0o077, 0o700), (0o002, 0o775)])
+def test_a_bank_folder_is_made_with_the_umask_like_mkdir(tmp_path, umask, mode):
+    from oddling.bank.store import save_bank
+    from test_bank import small_bank
+
+    old = os.umask(umask)
+    try:
+        save_bank(small_bank(), tmp_path / "b")
+        os.mkdir(tmp_path / "plain")                 # the outside reference: mkdir(2) under the same umask
+    finally:
+        os.umask(old)
+    assert oct((tmp_path / "b").stat().st_mode & 0o777) == oct(mode)
+    assert (tmp_path / "b").stat().st_mode & 0o777 == (tmp_path / "plain").stat().st_mode & 0o777

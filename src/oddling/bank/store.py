@@ -222,6 +222,7 @@ def _save_locked(bank: Bank, target: Path, force: bool) -> None:
     tmp = None
     try:
         tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-{os.getpid()}-"))
+        os.chmod(tmp, 0o777 & ~_umask())    # mkdtemp makes 0700; a bank folder is made like any other
         _write_files(bank, tmp)
         if target.exists():
             if (target / HISTORY_FILE).is_file():
@@ -382,6 +383,19 @@ def _warn(message: str) -> None:
     from oddling.jobs.common import OddlingWarning   # lazily: jobs sit above the bank
 
     warnings.warn(message, OddlingWarning, stacklevel=3)
+
+
+def _umask() -> int:
+    try:       # Linux reports it without changing it (other threads may be creating files)
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def _write_failure(what: str, exc: OSError) -> str:
