@@ -765,3 +765,29 @@ def test_a_bank_folder_is_made_with_the_umask_like_mkdir(tmp_path, umask, mode):
         os.umask(old)
     assert oct((tmp_path / "b").stat().st_mode & 0o777) == oct(mode)
     assert (tmp_path / "b").stat().st_mode & 0o777 == (tmp_path / "plain").stat().st_mode & 0o777
+
+
+# --- leftovers of writers that were killed --------------------------------------------------------
+
+def _dead_pid() -> int:
+    import subprocess
+    import sys
+
+    child = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    return int(child.stdout)          # exited and reaped: no process has this id now
+
+
+def test_partial_files_of_killed_writers_are_removed_on_the_next_write(tmp_path):
+    from oddling.embedding.cache import EmbeddingCache
+    from oddling.reporting.results import write_text
+
+    dead, alive = _dead_pid(), os.getppid()
+    for pid in (dead, alive):
+        (tmp_path / f".scores.csv.partial-{pid}").write_text("half")
+    write_text(tmp_path / "scores.csv", "path\n")
+    assert sorted(os.listdir(tmp_path)) == [f".scores.csv.partial-{alive}", "scores.csv"]
+    folder = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub").folder
+    for pid in (dead, alive):
+        (folder / f".chunk-{pid:032x}.npz.partial-{pid}").write_bytes(b"half")
+    EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+    assert sorted(p.name for p in folder.glob(".chunk-*")) == [f".chunk-{alive:032x}.npz.partial-{alive}"]

@@ -323,7 +323,8 @@ def _leftovers(target: Path) -> list[tuple[str, int, Path]]:
     return found
 
 
-def _pid_alive(pid: int) -> bool:
+def pid_alive(pid: int) -> bool:
+    """Whether process `pid` may still be running (the owner of a temporary file named after it)."""
     if pid == os.getpid():
         return True
     try:
@@ -360,7 +361,7 @@ def recover(target: str | os.PathLike) -> None:
             _warn(f"bank {target} had been left half replaced by a write that stopped; the bank as it was before "
                   "that write is back in place")
             found = _leftovers(target)
-    stale = [(kind, path) for kind, pid, path in found if not _pid_alive(pid)]
+    stale = [(kind, path) for kind, pid, path in found if not pid_alive(pid)]
     olds = sorted((p for kind, p in stale if kind == "old" and is_bank(p)), key=_mtime)
     if olds and is_bank(target):
         # Stopped after the new bank was in place: what it replaced becomes the previous version.

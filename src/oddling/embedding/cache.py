@@ -188,6 +188,7 @@ class EmbeddingCache:
         return sorted(self.folder.glob("chunk-*.npz"))
 
     def _load(self, report: bool = True) -> None:
+        self._remove_stale_partials()
         files = self._chunk_files()
         damaged: list[tuple[Path, str]] = []
         for path in files:
@@ -206,6 +207,18 @@ class EmbeddingCache:
             files = [f for f in files if f not in {p for p, _ in damaged}]
         if len(files) > COMPACT_ABOVE:
             self._compact(files)
+
+    def _remove_stale_partials(self) -> None:
+        """Half-written chunks of processes that were killed (`.chunk-*.npz.partial-PID`)."""
+        from oddling.bank.store import pid_alive
+
+        for path in self.folder.glob(".chunk-*.npz.partial-*"):
+            pid = path.name.rsplit("-", 1)[-1]
+            if pid.isdigit() and not pid_alive(int(pid)):
+                try:
+                    path.unlink()
+                except OSError:
+                    pass
 
     def _read_chunk(self, path: Path) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """(content hashes, vectors, health rows) of one chunk file, or _Damaged saying why not."""
@@ -274,7 +287,7 @@ class EmbeddingCache:
         if not self.writable:
             return None
         name = f"chunk-{uuid.uuid4().hex}.npz"
-        tmp = self.folder / f".{name}.partial"
+        tmp = self.folder / f".{name}.partial-{os.getpid()}"
         try:
             with open(tmp, "wb") as f:
                 hashes = np.array(hashes, dtype="U64")

@@ -6,6 +6,7 @@ import math
 import os
 import re
 from dataclasses import dataclass, field
+from glob import escape as glob_escape
 from pathlib import Path
 
 from oddling.data.intake import display_path, path_from_display
@@ -99,6 +100,19 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
     return "".join(",".join(_field(cell) for cell in line) + "\n" for line in lines)
 
 
+def _remove_stale_partials(path: Path) -> None:
+    """`.NAME.partial-PID` files that writers killed midway left beside `path`."""
+    from oddling.bank.store import pid_alive
+
+    for stale in path.parent.glob(f".{glob_escape(path.name)}.partial-*"):
+        pid = stale.name.rsplit("-", 1)[-1]
+        if pid.isdigit() and not pid_alive(int(pid)):
+            try:
+                stale.unlink()
+            except OSError:
+                pass
+
+
 def write_text(path: Path, text: str, force: bool = False) -> Path:
     """Write a result file, refusing to replace an existing one unless asked."""
     path = Path(path)
@@ -107,6 +121,7 @@ def write_text(path: Path, text: str, force: bool = False) -> Path:
 
         raise OddlingError(f"{path} already exists; pass --force to overwrite it")
     tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
+    _remove_stale_partials(path)
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         with open(tmp, "w", encoding="utf-8") as f:
