@@ -32,6 +32,7 @@ try:
 except ImportError:      # Windows: no flock; writers are not serialised there
     fcntl = None
 
+from oddling.data.health import STATS
 from oddling.detectors import make_detector
 from oddling.detectors.base import Detector
 from oddling.detectors.conformal import ConformalThreshold
@@ -477,9 +478,13 @@ def _check_calibration(f: _Fields, calibration: dict, scores: np.ndarray) -> Non
     cutoff = f.get("cutoff", (int, float, type(None)), source=calibration)
     if scores.ndim != 1 or not np.isfinite(scores).all():
         f.fail("calibration scores", "must be a 1-D array of finite numbers")
+    n = f.get("n", int, None, required=False, source=calibration)
+    if n is not None and n != len(scores):
+        f.fail("calibration.n", f"is {n}, but {CALIBRATION_FILE} holds {len(scores)} scores")
     expected = ConformalThreshold(scores, rate).cutoff
     recorded = math.inf if cutoff is None else float(cutoff)
-    if not (recorded == expected or abs(recorded - expected) <= 1e-9 * max(1.0, abs(expected))):
+    close = math.isfinite(expected) and abs(recorded - expected) <= 1e-9 * max(1.0, abs(expected))
+    if not (recorded == expected or close):
         f.fail("calibration.cutoff", f"is {cutoff}, but the calibration scores give {expected}")
 
 
@@ -495,6 +500,8 @@ def load_bank(path: str | os.PathLike) -> Bank:
         meta = json.loads(meta_path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise OddlingError(f"{meta_path} is unreadable: {exc}") from exc
+    except RecursionError as exc:      # "[[[[...": nesting deeper than Python's parser goes
+        raise OddlingError(f"{meta_path} is unreadable: nested too deeply") from exc
     f = _Fields(folder, meta)
     if meta.get("format") != FORMAT_NAME:
         raise OddlingError(f"{folder} is not an oddling bank (format {meta.get('format')!r})")
@@ -512,8 +519,12 @@ def load_bank(path: str | os.PathLike) -> Bank:
     calibration_scores = _load_array(folder, CALIBRATION_FILE).astype(np.float64)
     _check_calibration(f, calibration, calibration_scores)
     health_stats = _load_array(folder, HEALTH_FILE).astype(np.float64)
-    if health_stats.ndim != 2 or len(health_stats) != len(references):
-        f.fail("health_stats.npy", f"must have one row per reference ({len(references)}), got shape {health_stats.shape}")
+    if health_stats.ndim != 2 or len(health_stats) != len(references) or (
+            references and health_stats.shape[1] != len(STATS)):
+        f.fail(HEALTH_FILE, f"must have one row of {len(STATS)} statistics per reference "
+                            f"({len(references)}), got shape {health_stats.shape}")
+    if not np.isfinite(health_stats).all():
+        f.fail(HEALTH_FILE, "holds NaN or infinite values")
     health_fences = f.get("health_fences", dict, {}, required=False)
     _check_fences(f, health_fences)
     if version == 1:
@@ -575,8 +586,14 @@ def _read_v2(f: _Fields, n: int):
     features = None
     if representation["kind"] != "patches":
         features = _check_features(f, _load_array(f.folder, FEATURES_FILE), n, representation["dim"], FEATURES_FILE)
+    stored = set(arrays)
+    if features is not None:
         arrays["references"] = features
-    return representation, _detector(f, name, params, state, arrays), features
+    detector = _detector(f, name, params, state, arrays)
+    stray = sorted(stored - set(detector.state()[1]))
+    if stray:     # a file the detector did not write: not this bank's (or the state is not what it says)
+        f.fail(f"{DETECTOR_PREFIX}{stray[0]}.npy", f"is not part of a {name} detector's state")
+    return representation, detector, features
 
 
 def _read_v1(f: _Fields, n: int):
