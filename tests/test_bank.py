@@ -4,6 +4,8 @@ import json
 import numpy as np
 import pytest
 
+from oddling.data.health import STATS
+
 from oddling.bank.store import METADATA_FILE, Bank, check_compatible, load_bank, save_bank
 from oddling.detectors.knn import KNNDetector
 from oddling.errors import OddlingError
@@ -26,7 +28,7 @@ def small_bank() -> Bank:
         features=emb, calibration_scores=detector.calibration_scores_,
         calibration={"method": "leave-one-out", "n": 6, "target_fpr": 0.01, "cutoff": None},
         reference_root="/refs", tool_version="0.1.0", created="2026-01-01T00:00:00+00:00",
-        health_stats=np.zeros((6, 2)),
+        health_stats=np.zeros((6, len(STATS))),
     )
 
 
@@ -51,7 +53,8 @@ def test_existing_bank_not_replaced_without_force(tmp_path):
     with pytest.raises(OddlingError, match="already exists"):
         save_bank(small_bank(), tmp_path / "b")
     save_bank(small_bank(), tmp_path / "b", force=True)
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["b"]   # no temporary folders left behind
+    # no temporary folders or lock file left behind; the replaced bank is kept for `bank undo`
+    assert sorted(p.name for p in tmp_path.iterdir()) == [".b.previous", "b"]
 
 
 def test_force_never_replaces_a_folder_that_is_not_a_bank(tmp_path):
@@ -104,7 +107,7 @@ def write_v1_bank(folder, emb, k=2):
     n, dim = emb.shape
     np.save(folder / "embeddings.npy", emb)
     np.save(folder / "calibration_scores.npy", np.linspace(0.1, 0.6, n))
-    np.save(folder / "health_stats.npy", np.zeros((n, 2)))
+    np.save(folder / "health_stats.npy", np.zeros((n, len(STATS))))
     meta = {"format": "oddling-bank", "format_version": 1, "tool_version": "0.1.0",
             "created": "2026-01-01T00:00:00+00:00",
             "backbone": {"id": "efficientnet-lite0", "weights_sha256": "ab" * 32, "preprocessing": {"crop": 224},
@@ -154,4 +157,33 @@ def test_tampered_features_refused(tmp_path):
         load_bank(tmp_path / "b")
     np.save(tmp_path / "b" / "features.npy", np.full_like(bank.features, np.nan))
     with pytest.raises(OddlingError, match="NaN"):
+        load_bank(tmp_path / "b")
+
+
+# Found by tests/hostile_campaign.py: each was accepted (or raised a traceback later, in bank add
+# or audit) before load_bank checked it.
+@pytest.mark.parametrize("tamper, message", [
+    (lambda b: np.save(b / "calibration_scores.npy", np.zeros(0)), "calibration.n"),
+    (lambda b: np.save(b / "health_stats.npy", np.zeros((6, 3))), "health_stats.npy"),
+    (lambda b: np.save(b / "health_stats.npy", np.full((6, len(STATS)), np.nan)), "NaN"),
+    (lambda b: np.save(b / "detector.extra.npy", np.zeros(3)), "detector.extra.npy"),
+    (lambda b: (b / METADATA_FILE).write_text("[" * 100_000 + "]" * 100_000), "nested too deeply"),
+], ids=["calibration emptied", "health rows of 3", "health NaN", "stray detector array", "deep JSON"])
+def test_tampered_arrays_found_by_the_campaign_are_refused(tmp_path, tamper, message):
+    save_bank(small_bank(), tmp_path / "b")
+    tamper(tmp_path / "b")
+    with pytest.raises(OddlingError, match=message):
+        load_bank(tmp_path / "b")
+
+
+def test_an_empty_calibration_set_does_not_match_a_finite_cutoff(tmp_path):
+    bank = small_bank()
+    save_bank(bank, tmp_path / "b")
+    meta_path = tmp_path / "b" / METADATA_FILE
+    meta = json.loads(meta_path.read_text())
+    meta["calibration"].update(cutoff=0.5, target_fpr=0.5)
+    meta["calibration"].pop("n")
+    meta_path.write_text(json.dumps(meta))
+    np.save(tmp_path / "b" / "calibration_scores.npy", np.zeros(0))   # its cutoff is inf: nothing can be flagged
+    with pytest.raises(OddlingError, match="cutoff"):                  # inf - 0.5 <= 1e-9 * inf passed before
         load_bank(tmp_path / "b")

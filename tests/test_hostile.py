@@ -371,3 +371,22 @@ def test_single_frame_files_and_camera_mpo_jpegs_get_no_note(tmp_path):
         assert (stored.format, stored.n_frames) == ("MPO", 3)
     assert frames_note(load_rgb(mpo).info[FRAMES]) == ""
     assert _csv_rows(rows_to_csv([ScoreRow(path="one.png", status="ok", score=0.1)]))[0]["status"] == "ok"
+
+
+def test_decisions_csv_cannot_reach_outside_the_scored_folder(tmp_path):
+    """Path traversal (OWASP "Path Traversal"): '../' and absolute paths in a decisions CSV are refused."""
+    from oddling.errors import OddlingError
+    from oddling.jobs.maintenance import _read_decisions
+
+    scored = tmp_path / "scored"
+    scored.mkdir()
+    (tmp_path / "secret").mkdir()
+    Image.new("RGB", (8, 8)).save(tmp_path / "secret" / "a.png")
+    Image.new("RGB", (8, 8)).save(scored / "ok.png")
+    for bad in ("../secret/a.png", str(tmp_path / "secret" / "a.png"), "/etc/passwd"):
+        decisions = tmp_path / "d.csv"
+        decisions.write_text(f"path,decision\nok.png,normal\n{bad},normal\n", encoding="utf-8")
+        with pytest.raises(OddlingError, match="outside the scored folder"):
+            _read_decisions(decisions, scored)
+    decisions.write_text("path,decision\nok.png,normal\n", encoding="utf-8")
+    assert _read_decisions(decisions, scored) == [scored / "ok.png"]

@@ -11,7 +11,7 @@ from oddling.bank.store import load_bank
 from oddling.jobs.common import OddlingWarning, RunOptions
 from oddling.jobs.evaluation import EvaluationResult, evaluate
 from oddling.jobs.fitting import fit
-from oddling.jobs.maintenance import audit, bank_add, bank_info, bank_remove
+from oddling.jobs.maintenance import audit, bank_add, bank_info, bank_remove, bank_undo
 from oddling.jobs.monitoring import drift, drift_history
 from oddling.jobs.scoring import ScoreResult, score
 from oddling.jobs.tuning import TuneResult, tune
@@ -19,6 +19,6 @@ from oddling.reporting.results import count_ok
 from oddling.jobs.service import serve_app
 from oddling.jobs.watching import Watcher
 
-__all__ = ["fit", "score", "evaluate", "drift", "drift_history", "audit", "bank_add", "bank_remove", "bank_info", "tune", "TuneResult",
+__all__ = ["fit", "score", "evaluate", "drift", "drift_history", "audit", "bank_add", "bank_remove", "bank_undo", "bank_info", "tune", "TuneResult",
            "RunOptions", "ScoreResult", "EvaluationResult", "OddlingWarning", "load_bank", "count_ok"]
 __all__ += ["serve_app", "Watcher"]

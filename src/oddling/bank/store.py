@@ -4,19 +4,35 @@ Format version 2 records the representation and the detector (name, parameters, 
 version-1 banks (one kNN or patch mode, from earlier releases) still load. Saved into a
 temporary sibling folder and renamed into place, so a crash never leaves a half-written bank
 that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
+
+Writers of one bank take turns under an OS file lock (`bank_lock`, flock(2) on `.NAME.lock`
+beside the bank). A save that stopped between its two renames is undone by the next reader or
+writer (`recover`): the bank as it was before that save is put back. The version a save
+replaces is kept, one level deep, as `.NAME.previous` beside the bank; `restore_previous` swaps
+the two (`oddling bank undo`).
 """
 from __future__ import annotations
 
+import contextlib
+import errno
 import json
 import math
 import os
+import re
 import shutil
 import tempfile
+import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+try:
+    import fcntl
+except ImportError:      # Windows: no flock; writers are not serialised there
+    fcntl = None
+
+from oddling.data.health import STATS
 from oddling.detectors import make_detector
 from oddling.detectors.base import Detector
 from oddling.detectors.conformal import ConformalThreshold
@@ -110,47 +126,308 @@ class Bank:
         }
 
 
+_held: dict[str, list] = {}          # lock file -> [threading.RLock, file descriptor or None, depth]
+_held_guard = threading.Lock()
+
+
+def lock_path(path: str | os.PathLike) -> Path:
+    """The lock file of a bank: `.<name>.lock` beside it (the bank folder itself is replaced)."""
+    target = Path(os.path.abspath(path))
+    return target.with_name(f".{target.name}.lock")
+
+
+@contextlib.contextmanager
+def bank_lock(path: str | os.PathLike):
+    """Hold the exclusive lock of the bank at `path`: one writer at a time (POSIX flock(2)).
+
+    Re-entrant within a process (save_bank takes it again inside bank add), and threads of one
+    process take turns. The lock file is removed on release; a waiter that then holds a lock on
+    the removed file notices (the path no longer names the file it locked) and tries again, so
+    two writers never both hold it. Without fcntl (Windows) writers are not serialised.
+    """
+    lock = lock_path(path)
+    with _held_guard:
+        entry = _held.setdefault(str(lock), [threading.RLock(), None, 0])
+    entry[0].acquire()
+    try:
+        if entry[2] == 0:
+            entry[1] = _acquire_file_lock(lock)
+        entry[2] += 1
+        try:
+            yield lock
+        finally:
+            entry[2] -= 1
+            if entry[2] == 0 and entry[1] is not None:
+                fd, entry[1] = entry[1], None
+                try:
+                    os.unlink(lock)       # while still holding it: see the docstring
+                except OSError:
+                    pass
+                os.close(fd)
+    finally:
+        entry[0].release()
+
+
+def _acquire_file_lock(lock: Path) -> int | None:
+    if fcntl is None:
+        return None
+    if not lock.parent.is_dir():
+        return None        # no folder, so no bank to replace: whoever creates one locks then
+    try:
+        while True:
+            fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o666)
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX)
+                mine = os.fstat(fd)
+                now = os.stat(lock)
+            except FileNotFoundError:      # removed by the previous holder as we got it
+                os.close(fd)
+                continue
+            except BaseException:
+                os.close(fd)
+                raise
+            if (mine.st_dev, mine.st_ino) == (now.st_dev, now.st_ino):
+                return fd
+            os.close(fd)                   # we locked a file that has since been replaced
+    except OSError as exc:
+        raise OddlingError(f"cannot lock the bank {lock.parent / lock.name[1:-5]} for writing "
+                           f"({exc.strerror or exc} on {lock})") from exc
+
+
 def is_bank(path: Path) -> bool:
     return (Path(path) / METADATA_FILE).is_file()
 
 
 def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
-    """Write atomically. An existing bank is replaced only with force=True, and only once the new one is complete."""
+    """Write atomically. An existing bank is replaced only with force=True, and only once the new one is complete.
+
+    A write that fails (a full disk, a read-only folder) raises OddlingError and leaves the old
+    bank, if any, as it was, and no temporary files.
+    """
     target = Path(path)
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
+    with bank_lock(target):
+        _save_locked(bank, target, force)
+    bank.path = target
+    return target
+
+
+def _save_locked(bank: Bank, target: Path, force: bool) -> None:
+    recover(target)
     if target.exists():
         if not force:
             raise OddlingError(f"{target} already exists; pass --force to replace it")
         if not target.is_dir() or not (is_bank(target) or not any(target.iterdir())):
             raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-"))
+    tmp = None
     try:
-        if bank.features is not None:
-            np.save(tmp / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=np.float32))
-        np.save(tmp / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
-        np.save(tmp / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
-        for key, array in bank.detector.state()[1].items():
-            np.save(tmp / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
-        # Metadata last: a folder without bank.json is never taken for a bank.
-        with open(tmp / METADATA_FILE, "w", encoding="utf-8") as f:
-            json.dump(bank.metadata(), f, indent=2)
-            f.write("\n")
-            f.flush()
-            os.fsync(f.fileno())
+        tmp = Path(tempfile.mkdtemp(dir=target.parent, prefix=f".{target.name}.writing-{os.getpid()}-"))
+        os.chmod(tmp, 0o777 & ~_umask())    # mkdtemp makes 0700; a bank folder is made like any other
+        _write_files(bank, tmp)
         if target.exists():
             if (target / HISTORY_FILE).is_file():
                 shutil.copy2(target / HISTORY_FILE, tmp / HISTORY_FILE)
             old = target.with_name(f".{target.name}.old-{os.getpid()}")
             os.replace(target, old)
-            os.replace(tmp, target)
-            shutil.rmtree(old, ignore_errors=True)
+            try:
+                os.replace(tmp, target)
+            except BaseException:
+                os.replace(old, target)
+                raise
+            _keep_as_previous(target, old)
         else:
             os.replace(tmp, target)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+    except BaseException as exc:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+        if isinstance(exc, OSError):
+            raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
         raise
-    bank.path = target
-    return target
+
+
+_LEFTOVER = re.compile(r"(writing|old|discard)-(\d+)(-.*)?")
+
+
+def previous_path(path: str | os.PathLike) -> Path:
+    """Where the version a save replaced is kept: `.NAME.previous` beside the bank (one level)."""
+    target = Path(path)
+    return target.with_name(f".{target.name}.previous")
+
+
+def _keep_as_previous(target: Path, old: Path) -> None:
+    """`old` (the bank just replaced, moved aside) becomes the previous version; the one before goes."""
+    if not is_bank(old):
+        shutil.rmtree(old, ignore_errors=True)     # an empty folder that --force replaced
+        return
+    previous = previous_path(target)
+    if previous.exists():
+        discard = target.with_name(f".{target.name}.discard-{os.getpid()}")
+        os.replace(previous, discard)
+        os.replace(old, previous)
+        shutil.rmtree(discard, ignore_errors=True)
+    else:
+        os.replace(old, previous)
+
+
+def restore_previous(path: str | os.PathLike) -> Bank:
+    """Swap the bank at `path` with its previous version (so a second call swaps them back).
+
+    Under the bank's lock; the previous version is checked in full before anything moves. The
+    drift history stays with the bank in place. Done with renames like a save, so a crash
+    midway is put right by `recover`: either the swap did not happen or it is complete.
+    """
+    target = Path(path)
+    previous = previous_path(target)
+    with bank_lock(target):
+        recover(target)
+        if not is_bank(previous):
+            raise OddlingError(f"bank {target} has no previous version to go back to (one is kept when `bank add`, "
+                               "`bank remove` or `fit --force` replace a bank)")
+        load_bank(previous)
+        try:
+            if not target.exists():
+                os.replace(previous, target)
+            else:
+                if not is_bank(target):
+                    raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
+                if (target / HISTORY_FILE).is_file():
+                    shutil.copy2(target / HISTORY_FILE, previous / HISTORY_FILE)
+                old = target.with_name(f".{target.name}.old-{os.getpid()}")
+                os.replace(target, old)
+                try:
+                    os.replace(previous, target)
+                except BaseException:
+                    os.replace(old, target)
+                    raise
+                os.replace(old, previous)
+        except OSError as exc:
+            raise OddlingError(f"could not restore the previous version of bank {target} "
+                               f"({exc.strerror or exc})") from exc
+        return load_bank(target)
+
+
+def _leftovers(target: Path) -> list[tuple[str, int, Path]]:
+    """(kind, owning PID, path) of what an interrupted save of `target` can leave beside it:
+    `.NAME.writing-PID-*` (a new bank being written) and `.NAME.old-PID` (the bank it replaces,
+    moved aside for the second rename)."""
+    prefix = f".{target.name}."
+    try:
+        names = [n for n in os.listdir(target.parent) if n.startswith(prefix)]
+    except OSError:
+        return []
+    found = []
+    for name in names:
+        match = _LEFTOVER.fullmatch(name[len(prefix):])
+        if match and (match.group(1) == "writing" or match.group(3) is None):
+            found.append((match.group(1), int(match.group(2)), target.parent / name))
+    return found
+
+
+def pid_alive(pid: int) -> bool:
+    """Whether process `pid` may still be running (the owner of a temporary file named after it)."""
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:        # exists, but not ours to signal
+        return True
+    try:                   # a killed child its parent has not reaped yet is dead too
+        with open(f"/proc/{pid}/stat", "rb") as f:
+            return f.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
+    except (OSError, IndexError):
+        return True
+
+
+def recover(target: str | os.PathLike) -> None:
+    """Finish what an interrupted save left; call with the bank's lock held.
+
+    A save replaces a bank with two renames: the bank to `.NAME.old-PID`, then the new one from
+    `.NAME.writing-PID-*` to NAME; then the old one becomes `.NAME.previous`. A crash between
+    the two renames leaves no bank at NAME; then the old bank is put back (the save that stopped
+    never said it succeeded, so the bank is as it was before that command). A crash after them
+    leaves `.NAME.old-PID` beside the new bank; it becomes the previous version. Other leftovers
+    of processes that are no longer running (`.writing-*`, `.discard-*`) are removed.
+    """
+    target = Path(target)
+    found = _leftovers(target)
+    if not found:
+        return
+    if not target.exists():
+        olds = sorted((p for kind, _, p in found if kind == "old" and is_bank(p)), key=_mtime)
+        if olds:
+            os.replace(olds[-1], target)
+            _warn(f"bank {target} had been left half replaced by a write that stopped; the bank as it was before "
+                  "that write is back in place")
+            found = _leftovers(target)
+    stale = [(kind, path) for kind, pid, path in found if not pid_alive(pid)]
+    olds = sorted((p for kind, p in stale if kind == "old" and is_bank(p)), key=_mtime)
+    if olds and is_bank(target):
+        # Stopped after the new bank was in place: what it replaced becomes the previous version.
+        _keep_as_previous(target, olds[-1])
+    for kind, path in stale:
+        if path.exists():
+            shutil.rmtree(path, ignore_errors=True)
+
+
+def _mtime(path: Path) -> float:
+    try:
+        return path.stat().st_mtime
+    except OSError:
+        return 0.0
+
+
+def _warn(message: str) -> None:
+    import warnings
+
+    from oddling.jobs.common import OddlingWarning   # lazily: jobs sit above the bank
+
+    warnings.warn(message, OddlingWarning, stacklevel=3)
+
+
+def _umask() -> int:
+    try:       # Linux reports it without changing it (other threads may be creating files)
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def _write_failure(what: str, exc: OSError) -> str:
+    if exc.errno == errno.ENOSPC:
+        return f"no space left on device while writing {what}; nothing was replaced"
+    return f"could not write {what} ({exc.strerror or exc}); nothing was replaced"
+
+
+def _save_array(path: Path, array: np.ndarray) -> None:
+    with open(path, "wb") as f:
+        np.save(f, array)
+        f.flush()
+        os.fsync(f.fileno())
+
+
+def _write_files(bank: Bank, folder: Path) -> None:
+    if bank.features is not None:
+        _save_array(folder / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=np.float32))
+    _save_array(folder / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
+    _save_array(folder / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
+    for key, array in bank.detector.state()[1].items():
+        _save_array(folder / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
+    # Metadata last: a folder without bank.json is never taken for a bank.
+    with open(folder / METADATA_FILE, "w", encoding="utf-8") as f:
+        json.dump(bank.metadata(), f, indent=2)
+        f.write("\n")
+        f.flush()
+        os.fsync(f.fileno())
 
 
 class _Fields:
@@ -203,21 +480,30 @@ def _check_calibration(f: _Fields, calibration: dict, scores: np.ndarray) -> Non
     cutoff = f.get("cutoff", (int, float, type(None)), source=calibration)
     if scores.ndim != 1 or not np.isfinite(scores).all():
         f.fail("calibration scores", "must be a 1-D array of finite numbers")
+    n = f.get("n", int, None, required=False, source=calibration)
+    if n is not None and n != len(scores):
+        f.fail("calibration.n", f"is {n}, but {CALIBRATION_FILE} holds {len(scores)} scores")
     expected = ConformalThreshold(scores, rate).cutoff
     recorded = math.inf if cutoff is None else float(cutoff)
-    if not (recorded == expected or abs(recorded - expected) <= 1e-9 * max(1.0, abs(expected))):
+    close = math.isfinite(expected) and abs(recorded - expected) <= 1e-9 * max(1.0, abs(expected))
+    if not (recorded == expected or close):
         f.fail("calibration.cutoff", f"is {cutoff}, but the calibration scores give {expected}")
 
 
 def load_bank(path: str | os.PathLike) -> Bank:
     folder = Path(path)
     meta_path = folder / METADATA_FILE
+    if not folder.exists() and _leftovers(folder):
+        with bank_lock(folder):      # a save that stopped between its two renames: put the bank back
+            recover(folder)
     if not meta_path.is_file():
         raise OddlingError(f"{folder} is not an oddling bank (no {METADATA_FILE}); create one with `oddling fit`")
     try:
         meta = json.loads(meta_path.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise OddlingError(f"{meta_path} is unreadable: {exc}") from exc
+    except RecursionError as exc:      # "[[[[...": nesting deeper than Python's parser goes
+        raise OddlingError(f"{meta_path} is unreadable: nested too deeply") from exc
     f = _Fields(folder, meta)
     if meta.get("format") != FORMAT_NAME:
         raise OddlingError(f"{folder} is not an oddling bank (format {meta.get('format')!r})")
@@ -235,8 +521,12 @@ def load_bank(path: str | os.PathLike) -> Bank:
     calibration_scores = _load_array(folder, CALIBRATION_FILE).astype(np.float64)
     _check_calibration(f, calibration, calibration_scores)
     health_stats = _load_array(folder, HEALTH_FILE).astype(np.float64)
-    if health_stats.ndim != 2 or len(health_stats) != len(references):
-        f.fail("health_stats.npy", f"must have one row per reference ({len(references)}), got shape {health_stats.shape}")
+    if health_stats.ndim != 2 or len(health_stats) != len(references) or (
+            references and health_stats.shape[1] != len(STATS)):
+        f.fail(HEALTH_FILE, f"must have one row of {len(STATS)} statistics per reference "
+                            f"({len(references)}), got shape {health_stats.shape}")
+    if not np.isfinite(health_stats).all():
+        f.fail(HEALTH_FILE, "holds NaN or infinite values")
     health_fences = f.get("health_fences", dict, {}, required=False)
     _check_fences(f, health_fences)
     if version == 1:
@@ -299,8 +589,14 @@ def _read_v2(f: _Fields, n: int):
     features = None
     if representation["kind"] != "patches":
         features = _check_features(f, _load_array(f.folder, FEATURES_FILE), n, representation["dim"], FEATURES_FILE)
+    stored = set(arrays)
+    if features is not None:
         arrays["references"] = features
-    return representation, _detector(f, name, params, state, arrays), features
+    detector = _detector(f, name, params, state, arrays)
+    stray = sorted(stored - set(detector.state()[1]))
+    if stray:     # a file the detector did not write: not this bank's (or the state is not what it says)
+        f.fail(f"{DETECTOR_PREFIX}{stray[0]}.npy", f"is not part of a {name} detector's state")
+    return representation, detector, features
 
 
 def _read_v1(f: _Fields, n: int):

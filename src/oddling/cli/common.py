@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import functools
 import json
+import signal
 import sys
+import threading
 import warnings
 from pathlib import Path
 
@@ -24,12 +26,23 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     click.echo(f"warning: {message}", err=True)
 
 
+def _terminate(signum, frame):
+    raise KeyboardInterrupt   # SIGTERM (a kill, a service stop) ends the run like Ctrl-C
+
+
 def user_errors(func):
-    """Turn user mistakes into a one-line message and exit code 2 instead of a traceback."""
+    """Turn user mistakes into a one-line message and exit code 2 instead of a traceback.
+
+    SIGTERM is handled like Ctrl-C: the cache keeps the finished work, temporary files are
+    removed, and the exit code is 130.
+    """
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
         warnings.showwarning = _show_warning
+        previous = None
+        if threading.current_thread() is threading.main_thread() and hasattr(signal, "SIGTERM"):
+            previous = signal.signal(signal.SIGTERM, _terminate)
         try:
             return func(*args, **kwargs)
         except OddlingError as exc:
@@ -38,6 +51,9 @@ def user_errors(func):
         except KeyboardInterrupt:
             click.echo("Interrupted.", err=True)
             sys.exit(130)
+        finally:
+            if previous is not None:
+                signal.signal(signal.SIGTERM, previous)
 
     return wrapper
 

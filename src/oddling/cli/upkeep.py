@@ -180,3 +180,17 @@ def bank_remove(bank_path, items, kinds, everything, dry_run):
     else:
         click.echo(f"Removed {plural(result['removed'], 'reference')}; the bank now holds "
                    f"{plural(result['n_references'], 'reference')}.", err=True)
+
+
+@bank_group.command("undo")
+@click.argument("bank_path", type=click.Path(file_okay=False, path_type=Path))
+@user_errors
+def bank_undo(bank_path):
+    """Put back the version of BANK that the last `bank add`, `bank remove` or `fit --force` replaced.
+
+    The replaced version becomes the previous one, so running it again is a redo. BANK need not
+    exist: a bank left half replaced by a crash is put right first.
+    """
+    result = api.bank_undo(bank_path)
+    click.echo(f"Restored the previous version of {result['path']} (made {result['created']}, "
+               f"{result['n_references']} references); `oddling bank undo` again goes back.", err=True)

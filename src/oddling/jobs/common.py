@@ -116,7 +116,8 @@ def embed_paths(base: Path, paths: list[Path], representation, options: RunOptio
     if options.use_cache and representation.cacheable:
         folder = cache_dir(options.cache_dir)
         try:
-            cache = EmbeddingCache.open(folder, representation.cache_fingerprint(), representation.runtime)
+            cache = EmbeddingCache.open(folder, representation.cache_fingerprint(), representation.runtime,
+                                        dim=representation.embedding_dim)
             with tempfile.TemporaryFile(dir=cache.folder):   # it saves as the run goes: it must be writable
                 pass
         except OSError as exc:

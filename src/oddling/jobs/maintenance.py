@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 
-from oddling.bank.store import Bank, load_bank, save_bank
+from oddling.bank.store import Bank, bank_lock, load_bank, previous_path, restore_previous, save_bank
 from oddling.data.intake import walk
 from oddling.detectors.conformal import smallest_supported_rate
 from oddling.embedding.runner import OK
@@ -46,14 +46,27 @@ def _read_decisions(csv_path: Path, root: Path | None) -> list[Path]:
         if not reader.fieldnames or not {"path", "decision"} <= set(reader.fieldnames):
             raise OddlingError(f"{csv_path} must have columns path,decision (got {reader.fieldnames})")
         rows = list(reader)
-    files = []
+    from oddling.reporting.results import path_from_cell
+
+    files, outside = [], []
     for row in rows:
         if (row["decision"] or "").strip().lower() != "normal":
             continue
         # The page's export names the folder it scored; --root, when given, wins.
-        folder = root if root is not None else Path(row.get("scored_folder") or csv_path.parent)
-        path = Path(row["path"])
-        files.append(path if path.is_absolute() else folder / path)
+        folder = root if root is not None else Path(path_from_cell(row.get("scored_folder") or "") or csv_path.parent)
+        path = folder / path_from_cell(row["path"] or "")
+        # A decisions file is input like any other: its paths may only reach into the scored folder
+        # (no "../", no absolute paths, no links out of it).
+        try:
+            path.resolve().relative_to(folder.resolve())
+        except ValueError:
+            outside.append(row["path"])
+            continue
+        files.append(path)
+    if outside:
+        raise OddlingError(
+            f"{len(outside)} paths in {csv_path} lead outside the scored folder and were refused (first: "
+            f"{outside[0]}); paths must be relative to the folder that was scored (--root); nothing was added")
     missing = [str(p) for p in files if not p.is_file()]
     if missing:
         raise OddlingError(
@@ -82,9 +95,14 @@ def bank_add(
 
     Only files whose content is not in the bank yet are embedded; the detector is refitted and
     recalibrated; the bank is replaced atomically (the old one stays in place until the new one
-    is complete).
+    is complete). The bank's lock is held from reading it to saving it, so two `bank add`s (or
+    an add and a remove) never lose one side's update: the second waits, then reads the first's.
     """
-    options = options or RunOptions()
+    with bank_lock(bank_path):
+        return _bank_add(bank_path, source, root, options or RunOptions())
+
+
+def _bank_add(bank_path, source, root, options: RunOptions) -> dict:
     bank = load_bank(bank_path)
     require_features(bank, "bank add")
     source = Path(source)
@@ -177,32 +195,46 @@ def bank_remove(bank_path: str | os.PathLike, paths: list[str], *, dry_run: bool
     and nothing is changed. `before(paths)` (if given) is called with the references that will
     go, in bank order, before any work: the CLI prints them. The detector is then fitted on what
     is left; if it cannot be (too few references), OddlingError saying so, and nothing is changed.
-    With `dry_run` the refit is tried but the bank is not replaced.
+    With `dry_run` the refit is tried but the bank is not replaced. Under the bank's lock, from
+    reading to saving, like `bank_add`.
     """
-    bank = load_bank(bank_path)
-    require_features(bank, "bank remove")
-    wanted = set(paths)
-    present = {r["path"] for r in bank.references}
-    not_found = [p for p in dict.fromkeys(paths) if p not in present]
-    if not_found or not wanted:
-        shown = ", ".join(not_found[:5]) + (f", and {len(not_found) - 5} more" if len(not_found) > 5 else "")
-        raise OddlingError(
-            (f"{plural(len(not_found), 'path')} not in bank {bank_path}: {shown}" if not_found
-             else "nothing to remove") + "; nothing was changed (`oddling bank info` and `oddling audit` "
-            "show reference paths, relative to the reference folder)")
-    going = [r["path"] for r in bank.references if r["path"] in wanted]
-    if before is not None:
-        before(going)
-    keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
-    try:
-        refit(bank, [bank.references[i] for i in keep], bank.features[keep], bank.health_stats[keep])
-    except OddlingError as exc:
-        raise OddlingError(f"removing {plural(len(going), 'reference')} would leave {len(keep)}, too few for "
-                           f"the {bank.detector.name} detector ({exc}); nothing was changed") from exc
-    if not dry_run:
-        save_bank(bank, bank_path, force=True)
-    return {"removed": 0 if dry_run else len(going), "paths": going, "not_found": [], "n_references": bank.size,
-            "dry_run": dry_run}
+    with bank_lock(bank_path):
+        bank = load_bank(bank_path)
+        require_features(bank, "bank remove")
+        wanted = set(paths)
+        present = {r["path"] for r in bank.references}
+        not_found = [p for p in dict.fromkeys(paths) if p not in present]
+        if not_found or not wanted:
+            shown = ", ".join(not_found[:5]) + (f", and {len(not_found) - 5} more" if len(not_found) > 5 else "")
+            raise OddlingError(
+                (f"{plural(len(not_found), 'path')} not in bank {bank_path}: {shown}" if not_found
+                 else "nothing to remove") + "; nothing was changed (`oddling bank info` and `oddling audit` "
+                "show reference paths, relative to the reference folder)")
+        going = [r["path"] for r in bank.references if r["path"] in wanted]
+        if before is not None:
+            before(going)
+        keep = [i for i, r in enumerate(bank.references) if r["path"] not in wanted]
+        try:
+            refit(bank, [bank.references[i] for i in keep], bank.features[keep], bank.health_stats[keep])
+        except OddlingError as exc:
+            raise OddlingError(f"removing {plural(len(going), 'reference')} would leave {len(keep)}, too few for "
+                               f"the {bank.detector.name} detector ({exc}); nothing was changed") from exc
+        if not dry_run:
+            save_bank(bank, bank_path, force=True)
+        return {"removed": 0 if dry_run else len(going), "paths": going, "not_found": [], "n_references": bank.size,
+                "dry_run": dry_run}
+
+
+def bank_undo(bank_path: str | os.PathLike) -> dict:
+    """Put back the version of a bank that the last `bank add`, `bank remove` or `fit --force`
+    replaced; the replaced one becomes the previous version, so undoing twice is a redo.
+
+    One level only: each save keeps just the version it replaced (`.NAME.previous` beside the
+    bank). Under the bank's lock, like every writer.
+    """
+    bank = restore_previous(bank_path)
+    return {"path": str(bank.path), "created": bank.created, "n_references": bank.size,
+            "previous": str(previous_path(bank_path))}
 
 
 def bank_info(bank_path: str | os.PathLike) -> dict:
