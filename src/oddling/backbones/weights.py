@@ -183,9 +183,15 @@ def install_file(spec: BackboneSpec, staged: Path, cache: Path, force: bool = Fa
     """Move `staged` (a file beside its final place, in the same folder) to the backbone's cache
     path once its digest is the right one and it loads into the architecture; pin its digest
     where the manifest has none. On any refusal the staged file is removed and nothing is pinned."""
+    sha, to_pin = prove_file(spec, staged, cache, force=force)
+    return put_in_place(spec, staged, cache, sha, to_pin)
+
+
+def prove_file(spec: BackboneSpec, staged: Path, cache: Path, force: bool = False) -> tuple[str, bool]:
+    """(SHA-256, whether to pin it) of a staged file that is the backbone's: right digest (or
+    prefix) and loads into the architecture. Refused: the staged file is removed, OddlingError."""
     if spec.weights["source"] != "cache_file":
         raise OddlingError(f"backbone {spec.id!r} ships its weights in a package; nothing to install")
-    target = expected_cache_path(spec, cache)
     try:
         actual = sha256_file(staged)
         to_pin = check_digest(spec, cache, staged, actual, force=force)
@@ -193,11 +199,17 @@ def install_file(spec: BackboneSpec, staged: Path, cache: Path, force: bool = Fa
     except BaseException:
         staged.unlink(missing_ok=True)
         raise
+    return actual, to_pin
+
+
+def put_in_place(spec: BackboneSpec, staged: Path, cache: Path, sha256: str, to_pin: bool) -> Installed:
+    """Rename a proved staged file to the backbone's cache path (atomic) and pin its digest if asked."""
+    target = expected_cache_path(spec, cache)
     size = staged.stat().st_size
     os.replace(staged, target)
     if to_pin:
-        pin(spec, cache, actual)
-    return Installed(target, actual, to_pin, size)
+        pin(spec, cache, sha256)
+    return Installed(target, sha256, to_pin, size)
 
 
 def staging_path(spec: BackboneSpec, cache: Path, suffix: str) -> Path:
