@@ -58,15 +58,17 @@ def mismatches(module: nn.Module, state: dict[str, torch.Tensor]) -> list[str]:
     return problems
 
 
-def load_strict(module: nn.Module, path: Path, what: str, state: dict | None = None) -> nn.Module:
+def load_strict(module: nn.Module, path: Path, what: str, state: dict | None = None,
+                assign: bool = False) -> nn.Module:
     """Load the file at `path` into `module` with every key and shape checked; OddlingError naming
-    `what` (e.g. "backbone 'resnet18' (torchvision resnet18)") if anything differs."""
+    `what` (e.g. "backbone 'resnet18' (torchvision resnet18)") if anything differs. `assign`: the
+    file's tensors replace the module's (for a module built on the meta device)."""
     state = read_state_dict(path) if state is None else state
     problems = mismatches(module, state)
     if problems:
         raise OddlingError(f"weight file {path} does not fit {what}: " + "; ".join(problems))
     try:
-        module.load_state_dict(state, strict=True)
+        module.load_state_dict(state, strict=True, assign=assign)
     except RuntimeError as exc:   # dtype or other trouble the key/shape check did not catch
         raise OddlingError(f"weight file {path} does not fit {what}: {str(exc).splitlines()[0]}") from None
     return module

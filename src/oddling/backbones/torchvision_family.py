@@ -200,18 +200,33 @@ def check_manifest(spec, arch: Architecture) -> None:
                            f"but {arch.builder} gives {arch.embedding_dim}")
 
 
-def make_network(spec) -> TorchvisionBackbone:
-    """The architecture with random weights (no file read); eval mode."""
+def make_network(spec, empty: bool = False) -> TorchvisionBackbone:
+    """The architecture in eval mode, with random weights; `empty`: parameters without storage
+    (the meta device) where the builder allows it, for a file's weights to be assigned into,
+    which skips the random initialisation (seconds for the larger networks)."""
     import torchvision.models
 
     arch = architecture_of(spec)
     check_manifest(spec, arch)
-    model = getattr(torchvision.models, arch.builder)(weights=None)
+    builder = getattr(torchvision.models, arch.builder)
+    model = None
+    if empty:
+        try:
+            with torch.device("meta"):
+                model = builder(weights=None)
+        except NotImplementedError:   # RegNet computes its widths with tensors: build it for real
+            model = None
+    if model is None:
+        model = builder(weights=None)
     return TorchvisionBackbone(arch, model, spec.id).eval()
 
 
 def build(spec, weights_path: Path) -> TorchvisionBackbone:
     """The network with the weights of `weights_path` (every key and shape must match), in eval mode."""
-    network = make_network(spec)
-    load_strict(network.model, Path(weights_path), f"backbone {spec.id!r} (torchvision {spec.architecture})")
+    network = make_network(spec, empty=True)
+    load_strict(network.model, Path(weights_path), f"backbone {spec.id!r} (torchvision {spec.architecture})",
+                assign=True)
+    left = [n for n, t in list(network.named_parameters()) + list(network.named_buffers()) if t.is_meta]
+    if left:   # every tensor of these networks is in the state dict; a new torchvision may differ
+        raise OddlingError(f"backbone {spec.id!r}: the weight file leaves {', '.join(left[:3])} unset")
     return network.eval()
