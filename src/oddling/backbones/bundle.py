@@ -170,7 +170,8 @@ def unpack(bundle: Path, cache: Path, force: bool = False) -> list[Installed]:
                     raise OddlingError(f"{bundle}: {entry['path']} has {size} bytes and SHA-256 {sha}, but the "
                                        f"bundle lists {entry['size']} bytes and {entry['sha256']}: damaged; "
                                        "nothing unpacked")
-        proved = [(spec, path) + prove_file(spec, path, cache, force=force) for spec, path in staged]
+        proved = [(spec, path) + prove_file(spec, path, cache, force=force, label=f"{bundle}: {entry['path']}")
+                  for (spec, path), entry in zip(staged, entries)]
     except BaseException:
         for _, path in staged:
             path.unlink(missing_ok=True)

@@ -81,7 +81,8 @@ def fetch_weights(spec: BackboneSpec, cache: Path, url: str | None = None, force
         resumed = download(source, partial, expected_size=spec.weights.get("size"), progress=progress,
                            attempts=attempts, timeout=timeout)
         try:
-            installed = install_file(spec, partial, cache, force=force)   # removes the partial if refused
+            installed = install_file(spec, partial, cache, force=force,   # removes the partial if refused
+                                     label=f"the file downloaded from {source}")
         finally:
             if not partial.exists():
                 _info_path(partial).unlink(missing_ok=True)
@@ -209,6 +210,9 @@ def download(url: str, partial: Path, expected_size: int | None = None, progress
             return kept
         problem = broken or f"the connection closed after {size} of {total} bytes"
     size = partial.stat().st_size if partial.exists() else 0
+    if not size:
+        raise OddlingError(f"downloading {url} failed after {attempts} attempts ({problem}); check the URL, the "
+                           "network and the proxy variables (HTTPS_PROXY, HTTP_PROXY, NO_PROXY)")
     raise OddlingError(f"downloading {url} did not complete after {attempts} attempts ({problem}); "
                        f"{size} bytes are kept in {partial}: run the same command again to resume")
 

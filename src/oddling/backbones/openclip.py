@@ -3,6 +3,7 @@ language-image learning", CVPR 2023). Only the image tower is kept; its output i
 The towers expose no intermediate stages: their manifest entries list none."""
 from __future__ import annotations
 
+import logging
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -42,7 +43,11 @@ def build(spec, weights_path: Path) -> ImageTower:
     import open_clip
 
     try:
-        model = open_clip.create_model(spec.architecture, pretrained=None)
+        logging.disable(logging.WARNING)   # open_clip warns that no pretrained weights were loaded: they come next
+        try:
+            model = open_clip.create_model(spec.architecture, pretrained=None)
+        finally:
+            logging.disable(logging.NOTSET)
     except RuntimeError as exc:
         raise OddlingError(f"backbone {spec.id!r}: open_clip has no architecture {spec.architecture!r} "
                            f"({str(exc).splitlines()[0]}); upgrade open_clip_torch") from None

@@ -26,8 +26,9 @@ def read_state_dict(path: Path) -> dict[str, torch.Tensor]:
         else:
             state = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as exc:   # pickle, zip and safetensors errors all mean the same: not a weight file
-        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise OddlingError(f"{path} is not a readable PyTorch weight file ({reason[:200]})") from None
+        text = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
+        reason = type(exc).__name__ + (f": {text[:200]}" if len(text) > 8 else "")
+        raise OddlingError(f"{path} is not a readable PyTorch weight file ({reason})") from None
     if isinstance(state, dict) and isinstance(state.get("state_dict"), dict):
         state = state["state_dict"]
     if not isinstance(state, dict) or not state or not all(

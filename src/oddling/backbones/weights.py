@@ -179,23 +179,31 @@ class Installed:
     size: int
 
 
-def install_file(spec: BackboneSpec, staged: Path, cache: Path, force: bool = False) -> Installed:
+def install_file(spec: BackboneSpec, staged: Path, cache: Path, force: bool = False,
+                 label: str | None = None) -> Installed:
     """Move `staged` (a file beside its final place, in the same folder) to the backbone's cache
     path once its digest is the right one and it loads into the architecture; pin its digest
     where the manifest has none. On any refusal the staged file is removed and nothing is pinned."""
-    sha, to_pin = prove_file(spec, staged, cache, force=force)
+    sha, to_pin = prove_file(spec, staged, cache, force=force, label=label)
     return put_in_place(spec, staged, cache, sha, to_pin)
 
 
-def prove_file(spec: BackboneSpec, staged: Path, cache: Path, force: bool = False) -> tuple[str, bool]:
+def prove_file(spec: BackboneSpec, staged: Path, cache: Path, force: bool = False,
+               label: str | None = None) -> tuple[str, bool]:
     """(SHA-256, whether to pin it) of a staged file that is the backbone's: right digest (or
-    prefix) and loads into the architecture. Refused: the staged file is removed, OddlingError."""
+    prefix) and loads into the architecture. Refused: the staged file is removed, OddlingError
+    (naming the file as `label`, e.g. the user's file the staged one is a copy of)."""
     if spec.weights["source"] != "cache_file":
         raise OddlingError(f"backbone {spec.id!r} ships its weights in a package; nothing to install")
     try:
         actual = sha256_file(staged)
         to_pin = check_digest(spec, cache, staged, actual, force=force)
         check_loads(spec, staged)
+    except OddlingError as exc:
+        staged.unlink(missing_ok=True)
+        if label is None:
+            raise
+        raise OddlingError(str(exc).replace(f"weight file {staged}", label).replace(str(staged), label)) from None
     except BaseException:
         staged.unlink(missing_ok=True)
         raise
@@ -240,7 +248,7 @@ def import_file(spec: BackboneSpec, source_file: Path, cache: Path, force: bool 
     except OSError as exc:
         staged.unlink(missing_ok=True)
         raise OddlingError(f"cannot copy {source_file} into the cache: {exc.strerror or exc}") from None
-    return install_file(spec, staged, cache, force=force)
+    return install_file(spec, staged, cache, force=force, label=str(source_file))
 
 
 @dataclass(frozen=True)
