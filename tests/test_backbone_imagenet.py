@@ -1,5 +1,6 @@
 """The embedded EfficientNet-Lite0, and Lite1 and Lite2, are the real ImageNet networks: known
-images give known classes.
+images give known classes. So are the torchvision backbones, where their real weight files are
+on the machine (see below; skipped, saying why, where they are not).
 
 Images: scikit-image's bundled samples. Class indices from memory of the ImageNet-1k index
 (281 tabby, 282 tiger cat, 285 Egyptian cat, 657 missile, 744 projectile, 967 espresso).
@@ -116,3 +117,60 @@ def test_every_scaled_state_dict_key_matches(backbone_id):
     state = torch.load(path, weights_only=True)
     result = EfficientNetLite(width, depth).load_state_dict(state, strict=True)   # shapes checked too
     assert result.missing_keys == [] and result.unexpected_keys == []
+
+
+# torchvision backbones: the same images, where their real ImageNet weights are on this machine.
+# They are looked for in $ODDLING_REAL_WEIGHTS_DIR, else the user's oddling cache folder (read
+# only: nothing is pinned or written there), at <folder>/weights/<id>/<torchvision file name>;
+# `oddling backbones fetch ID` puts them there. Without them these tests skip, saying so. The
+# class checks are looser than the Lite ones above (top 3, not measured confidences): they were
+# written without the real files at hand.
+TORCHVISION_IDS = ("resnet18", "resnet50", "convnext-tiny", "efficientnet-b0", "regnety-800mf", "vit-b-16")
+CATS = {281, 282, 283, 284, 285}   # tabby, tiger cat, Persian, Siamese, Egyptian cat
+
+
+def real_weights_folder():
+    import os
+
+    import platformdirs
+
+    return os.environ.get("ODDLING_REAL_WEIGHTS_DIR") or platformdirs.user_cache_dir("oddling", appauthor=False)
+
+
+@pytest.fixture(scope="module", params=TORCHVISION_IDS)
+def real_torchvision(request):
+    from pathlib import Path
+
+    from oddling.backbones import Backbone
+    from oddling.backbones.manifest import get_spec
+    from oddling.backbones.torchvision_family import build
+    from oddling.data.intake import sha256_file
+
+    spec = get_spec(request.param)
+    path = Path(real_weights_folder()) / "weights" / spec.id / spec.weights["filename"]
+    if not path.is_file():
+        pytest.skip(f"real ImageNet weights for {spec.id} are not at {path} (no network here to fetch them; "
+                    f"run `oddling backbones fetch {spec.id}` on a machine with one, or set ODDLING_REAL_WEIGHTS_DIR)")
+    sha = sha256_file(path)
+    assert sha.startswith(spec.weights["sha256_prefix"]), f"{path} is not torchvision's file"
+    return Backbone(spec, sha, build(spec, path))
+
+
+def test_torchvision_chelsea_is_a_cat(real_torchvision):
+    top3 = set(probabilities(real_torchvision, "chelsea").topk(3).indices.tolist())
+    assert top3 & CATS
+
+
+def test_torchvision_coffee_is_espresso(real_torchvision):
+    assert 967 in probabilities(real_torchvision, "coffee").topk(3).indices.tolist()
+
+
+def test_torchvision_rocket_is_missile_or_projectile(real_torchvision):
+    assert {657, 744} & set(probabilities(real_torchvision, "rocket").topk(3).indices.tolist())
+
+
+def test_torchvision_embedding_is_unit_length(real_torchvision):
+    image = Image.fromarray(skimage_data.astronaut())
+    vec = real_torchvision.embed(real_torchvision.preprocessing.to_array(image)[None])
+    assert vec.shape == (1, real_torchvision.embedding_dim)
+    np.testing.assert_allclose(np.linalg.norm(vec, axis=1), 1.0, atol=1e-5)

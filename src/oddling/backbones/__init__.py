@@ -18,12 +18,14 @@ from oddling.paths import cache_dir
 from oddling.backbones import efficientnet_lite
 from oddling.backbones import onnx_runtime
 from oddling.backbones import openclip
+from oddling.backbones import torchvision_family
 from oddling.backbones.manifest import BackboneSpec, get_spec, load_manifest
 from oddling.backbones.weights import resolve_weights
 
 FAMILIES = {
     "efficientnet_lite": efficientnet_lite.build,
     "open_clip": openclip.build,
+    "torchvision": torchvision_family.build,
 }
 
 DEFAULT_BACKBONE = "efficientnet-lite0"

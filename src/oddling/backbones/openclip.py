@@ -3,6 +3,7 @@ language-image learning", CVPR 2023). Only the image tower is kept; its output i
 The towers expose no intermediate stages: their manifest entries list none."""
 from __future__ import annotations
 
+import logging
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -10,6 +11,7 @@ import torch
 from torch import nn
 
 from oddling.errors import OddlingError
+from oddling.backbones.statedict import load_strict, read_state_dict
 
 
 class ImageTower(nn.Module):
@@ -32,28 +34,22 @@ class ImageTower(nn.Module):
 
 def load_state_dict_file(path: Path) -> dict:
     """A plain state dict from .safetensors or a torch file; never unpickles arbitrary objects."""
-    if path.suffix == ".safetensors":
-        from safetensors.torch import load_file
-
-        state = load_file(str(path))
-    else:
-        state = torch.load(path, map_location="cpu", weights_only=True)
-    if isinstance(state, dict) and "state_dict" in state:
-        state = state["state_dict"]
-    if not isinstance(state, dict):
-        raise OddlingError(f"{path} does not hold a state dict")
-    return {k.removeprefix("module."): v for k, v in state.items()}
+    return read_state_dict(path)
 
 
 def build(spec, weights_path: Path) -> ImageTower:
+    """open_clip's own model for `spec.architecture` (its factory, no pretrained download), with
+    the weights of the local file: every key and shape must match; only the image tower is kept."""
     import open_clip
 
-    model = open_clip.create_model(spec.architecture, pretrained=None)
     try:
-        model.load_state_dict(load_state_dict_file(Path(weights_path)), strict=True)
+        logging.disable(logging.WARNING)   # open_clip warns that no pretrained weights were loaded: they come next
+        try:
+            model = open_clip.create_model(spec.architecture, pretrained=None)
+        finally:
+            logging.disable(logging.NOTSET)
     except RuntimeError as exc:
-        raise OddlingError(
-            f"weight file {weights_path} does not fit open_clip architecture {spec.architecture!r}: "
-            f"{str(exc).splitlines()[0]}"
-        ) from exc
+        raise OddlingError(f"backbone {spec.id!r}: open_clip has no architecture {spec.architecture!r} "
+                           f"({str(exc).splitlines()[0]}); upgrade open_clip_torch") from None
+    load_strict(model, Path(weights_path), f"open_clip architecture {spec.architecture!r}")
     return ImageTower(model.visual, name=spec.id).eval()
