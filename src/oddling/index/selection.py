@@ -130,7 +130,7 @@ def choose_index(vectors: np.ndarray, k: int, kind: str = "auto", target_recall:
         name, start, limit = "nprobe", 1, index.nlist
     else:
         index = HNSWCosineIndex.build(vectors, rest)
-        name, start, limit = "efSearch", max(16, k), MAX_EF_SEARCH
+        name, start, limit = "efSearch", k, MAX_EF_SEARCH
     value, recall, lower, met = tune(index, queries, truth, k, float(target_recall), start, limit)
     if not met:
         raise OddlingError(f"the {kind} index reaches recall@{k} {recall:.3f} at {name}={value}, below the target "
