@@ -367,3 +367,22 @@ def test_add_refuses_features_of_another_size():
         det.add(unit(rng.standard_normal((3, 5))))
     with pytest.raises(OddlingError, match="fitted"):
         KNNDetector().add(unit(rng.standard_normal((3, 4))))
+
+
+def test_fit_command_passes_index_to_the_knn_detector_only():
+    from click.testing import CliRunner
+
+    from oddling.cli.analysis import _detector_params, fit
+
+    assert _detector_params("knn", None, None, (), "hnsw") == {"index": "hnsw"}
+    with pytest.raises(OddlingError, match="--index applies to the knn detector"):
+        _detector_params("patch-knn", None, None, (), "ivf")
+    assert "--index [auto|exact|ivf|hnsw]" in CliRunner().invoke(fit, ["--help"]).output
+
+
+@pytest.mark.parametrize("kind", ["ivf", "hnsw"])
+def test_same_bank_and_seed_give_the_same_index(kind, bank):
+    # oddling's determinism promise: the saved index is byte-identical across fits
+    first, second = (KNNDetector(k=K, index=kind).fit(bank[:3000]).state() for _ in range(2))
+    assert first[0] == second[0]
+    np.testing.assert_array_equal(first[1]["index"], second[1]["index"])
