@@ -31,9 +31,9 @@ def test_numpy_reference_equals_scipy():
 
 
 def test_faiss_equals_numpy_in_many_chunks(monkeypatch):
-    import oddling.index.exact as knn
+    import oddling.index.base as index_base
 
-    monkeypatch.setattr(knn, "QUERY_CHUNK", 16)   # force several faiss calls
+    monkeypatch.setattr(index_base, "QUERY_CHUNK", 16)   # force several faiss calls
     rng = np.random.default_rng(2)
     bank, queries = unit(rng, 300, 32), unit(rng, 100, 32)
     fd, _ = ExactCosineIndex(bank).search(queries, 5)

@@ -13,6 +13,7 @@ from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
 from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
                                 target_fpr_override, user_errors)
 from oddling.errors import OddlingError
+from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
 from oddling.jobs.common import check_output, plural, refuse_existing
 
 
@@ -53,9 +54,9 @@ def detector_options(func):
     return func
 
 
-def _detector_params(detector: str, k, coreset, param_pairs) -> dict:
+def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict:
     params = parse_params(param_pairs)
-    for name, value, owner in (("k", k, "knn"), ("coreset", coreset, "patch-knn")):
+    for name, value, owner in (("k", k, "knn"), ("coreset", coreset, "patch-knn"), ("index", index, "knn")):
         if value is not None:
             if detector != owner:
                 raise OddlingError(f"--{name} applies to the {owner} detector, not {detector}")
@@ -68,18 +69,21 @@ def _detector_params(detector: str, k, coreset, param_pairs) -> dict:
 @click.option("--bank", "bank_path", required=True, type=click.Path(path_type=Path),
               help="Folder to write the bank into.")
 @detector_options
+@click.option("--index", "index", type=click.Choice(["auto", "exact", "ivf", "hnsw"]), default=None,
+              help=f"knn: how neighbours are found; auto = exact below {EXACT_BELOW:,} references, else "
+                   f"{AUTO_APPROXIMATE.upper()} tuned to recall@k 0.95 (see README, Large collections) [default: auto].")
 @click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
               show_default=True, help="False-alarm rate on normal images that sets the flag cutoff.")
 @click.option("--force", is_flag=True, help="Replace an existing bank.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
 @run_options
 @user_errors
-def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, target_fpr, force,
-        as_json, **run):
+def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, index, target_fpr,
+        force, as_json, **run):
     """Build a reference bank from REFERENCE_DIR, a folder of known-normal images."""
     refuse_existing(bank_path, force=force)
     bank = api.fit(reference_dir, bank_path, representation=representation, backbone=backbone, detector=detector,
-                   params=_detector_params(detector, k, coreset, param_pairs), target_fpr=target_fpr, force=force,
+                   params=_detector_params(detector, k, coreset, param_pairs, index), target_fpr=target_fpr, force=force,
                    options=_options(**run))
     info = api.bank_info(bank_path)
     if as_json:
