@@ -274,7 +274,6 @@ def decode_files(tmp_path_factory):
 
 @pytestmark_openvino
 def test_fast_decode_gives_the_manifests_input_within_tolerance(tmp_path, decode_files):
-    from oddling.data import intake
     from oddling.embedding.runner import _prepare
 
     net = load_backbone("efficientnet-lite0", tmp_path, runtime="openvino")
@@ -284,41 +283,6 @@ def test_fast_decode_gives_the_manifests_input_within_tolerance(tmp_path, decode
         fast = np.stack([_prepare(p, prep)[1] for p in paths])
         mad = np.abs(plain - fast).mean(axis=(1, 2, 3))
         cosine = np.sum(net.embed(plain) * net.embed(fast), axis=1)
-        print(f"\n[decode] {label} ({intake.DECODER}): mean abs diff max {mad.max():.4f}, "
+        print(f"\n[decode] {label}: mean abs diff max {mad.max():.4f}, "
               f"embedding cosine min {cosine.min():.5f}")
         assert mad.max() <= 0.01 and cosine.min() >= min_cosine, label
-
-
-def test_simplejpeg_pixels_equal_pillows_draft_decode(decode_files):
-    from oddling.data import intake
-
-    if intake._simplejpeg is None:
-        pytest.skip("simplejpeg is not installed")
-    for path in decode_files[0][:4] + decode_files[1]:
-        fast = np.asarray(intake.load_rgb(path, min_side=384))
-        saved, intake._simplejpeg = intake._simplejpeg, None
-        try:
-            pillow = np.asarray(intake.load_rgb(path, min_side=384))
-        finally:
-            intake._simplejpeg = saved
-        assert np.array_equal(fast, pillow), path.name
-
-
-def test_fast_decode_applies_exif_orientation_like_pillow(tmp_path):
-    from oddling.data import intake
-
-    rng = np.random.default_rng(3)
-    base = np.asarray(Image.fromarray(rng.integers(0, 256, (12, 16, 3), dtype=np.uint8)).resize((1600, 1200)))
-    for orientation in range(1, 9):
-        exif = Image.Exif()
-        exif[0x0112] = orientation
-        path = tmp_path / f"o{orientation}.jpg"
-        Image.fromarray(base).save(path, exif=exif, quality=95)
-        fast = intake.load_rgb(path, min_side=384)
-        saved, intake._simplejpeg = intake._simplejpeg, None
-        try:
-            pillow = intake.load_rgb(path, min_side=384)
-        finally:
-            intake._simplejpeg = saved
-        assert fast.size == pillow.size and fast.info[intake.ORIGINAL_SIZE] == pillow.info[intake.ORIGINAL_SIZE]
-        assert np.array_equal(np.asarray(fast), np.asarray(pillow)), orientation

@@ -27,15 +27,6 @@ _FORMATS = ("JPEG", "PNG", "BMP", "TIFF", "WEBP", "GIF")
 _DRAFT_FORMATS = frozenset({"JPEG", "MPO"})
 _MESSAGE_CHARS = 120
 
-try:   # libjpeg-turbo through a thinner wrapper than Pillow's: the same pixels, decoded faster
-    import simplejpeg as _simplejpeg
-except ImportError:   # pragma: no cover - an optional speed-up; Pillow's draft mode is the fallback
-    _simplejpeg = None
-DECODER = "simplejpeg" if _simplejpeg is not None else "pillow"   # in the embedding cache key
-_TRANSPOSE = {2: Image.Transpose.FLIP_LEFT_RIGHT, 3: Image.Transpose.ROTATE_180, 4: Image.Transpose.FLIP_TOP_BOTTOM,
-              5: Image.Transpose.TRANSPOSE, 6: Image.Transpose.ROTATE_270, 7: Image.Transpose.TRANSVERSE,
-              8: Image.Transpose.ROTATE_90}   # EXIF orientation -> what ImageOps.exif_transpose does
-
 
 # --- paths as text ---------------------------------------------------------------------------------
 # Inside oddling a path is a str as Python gives it: bytes that are not valid UTF-8 arrive as lone
@@ -330,57 +321,10 @@ def frames_note(frames: int | None) -> str:
     return f"first of {frames} frames" if frames else "first frame only (the others could not be counted)"
 
 
-def draft_scale(width: int, height: int, min_side: int) -> int:
-    """The DCT scaling denominator (1, 2, 4 or 8) Pillow's draft mode picks for a request of
-    (min_side, min_side): the largest that keeps both sides >= min_side."""
-    for denominator in (8, 4, 2):
-        if -(-width // denominator) >= min_side and -(-height // denominator) >= min_side:
-            return denominator
-    return 1
-
-
-def _turbo_decode(opened: Image.Image, min_side: int) -> tuple[Image.Image, tuple[int, int]] | None:
-    """A baseline or progressive JPEG (grey or YCbCr) decoded by libjpeg-turbo (simplejpeg) at
-    the scale Pillow's draft mode would use, EXIF orientation applied: (image, decoded size).
-
-    Only the power-of-two scales 1/2, 1/4, 1/8: at those the pixels equal Pillow's draft decode
-    bit for bit (measured), only faster. libjpeg-turbo also offers M/8 (3/8, 5/8, ...), which
-    would decode smaller, but those moved the network input 10x further from a full decode (mean
-    abs difference 0.021 against 0.002 on a 902x600 photo). None whenever libjpeg-turbo reports
-    anything, even a warning (strict): Pillow then decodes the file and gives the status, so no
-    file reads differently from before."""
-    if _simplejpeg is None or opened.format != "JPEG" or opened.mode not in ("RGB", "L"):
-        return None
-    width, height = opened.size
-    denominator = draft_scale(width, height, min_side)
-    try:
-        opened.fp.seek(0)
-        data = opened.fp.read()
-        pixels = _simplejpeg.decode_jpeg(data, colorspace="RGB", min_height=-(-height // denominator),
-                                         min_width=-(-width // denominator), strict=True)
-    except Exception:
-        return None
-    image = Image.fromarray(pixels, "RGB")
-    decoded_size = image.size
-    try:
-        method = _TRANSPOSE.get(opened.getexif().get(0x0112, 1))
-    except Exception:   # broken EXIF should not cost a decodable image: keep it unrotated
-        method = None
-    return (image.transpose(method) if method is not None else image), decoded_size
-
-
 def _decode(path: Path, min_side: int | None, max_pixels: int) -> Image.Image:
     with Image.open(path, formats=_FORMATS) as opened:
         frames = _check_header(opened, min_side, max_pixels)
         width, height = opened.size
-        fast = _turbo_decode(opened, min_side) if min_side else None
-        if fast is not None:
-            image, decoded_size = fast
-            rgb = image   # already RGB, and independent of the file
-            turned = image.size != decoded_size
-            rgb.info[ORIGINAL_SIZE] = (height, width) if turned else (width, height)
-            rgb.info[FRAMES] = frames
-            return rgb
         if min_side and opened.format in _DRAFT_FORMATS:
             # Decode at the smallest DCT scale (1/2, 1/4, 1/8) keeping both sides >= min_side.
             # A square request holds whichever way the EXIF orientation later turns the image.
@@ -427,10 +371,8 @@ def check_type(path: Path) -> None:
 def load_rgb(path: Path, min_side: int | None = None, max_pixels: int = MAX_PIXELS_DEFAULT) -> Image.Image:
     """Decode `path` to a fully loaded RGB image, EXIF orientation applied; IntakeError says why not.
 
-    With `min_side`, JPEGs decode at reduced size with both sides still >= min_side: a 12-MP
-    photo decodes several times faster when the network wants 256 px: libjpeg-turbo's DCT scaling
-    by 1/2, 1/4 or 1/8, through simplejpeg where installed (the same pixels as Pillow's draft
-    mode, faster), else through Pillow's draft mode.
+    With `min_side`, JPEGs decode at reduced size (Pillow's draft mode) with both sides still
+    >= min_side: a 12-MP photo decodes several times faster when the network wants 256 px.
     Truncated files fail (ImageFile.LOAD_TRUNCATED_IMAGES is left alone). The pixel count is
     checked against `max_pixels` from the header, before any pixel is decoded; so are the aspect
     ratio (at most MAX_ASPECT_RATIO:1) and, with `min_side`, the pixel count after the resize.

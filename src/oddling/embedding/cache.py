@@ -1,7 +1,7 @@
 """On-disk cache of embeddings, keyed by file content and everything that shapes the vector.
 
 Layout: <cache>/embeddings/<key>/chunk-*.npz, where <key> digests the backbone id, weight
-SHA-256, preprocessing, runtime (with its precision), JPEG decoder and health definition; each chunk holds `sha256` (file content hashes) and
+SHA-256, preprocessing, runtime (with its precision) and health definition; each chunk holds `sha256` (file content hashes) and
 `vectors`, and `health` (the image statistics of health.STATS). Chunks are written to a temporary name and renamed, so a reader never sees half a
 chunk and two processes sharing the cache never write the same file. Work is flushed every
 FLUSH_EVERY new vectors and when a run stops (Ctrl-C included), so an interrupted fit or score
@@ -23,14 +23,12 @@ COMPACT_ABOVE = 64       # merge chunk files when there are more than this many
 
 
 def cache_key(fingerprint: dict, runtime: str) -> str:
-    """The folder name for one representation and runtime. The JPEG decoder and the image-health
-    definition are in it too (the chunks hold health statistics): entries made by another decoder
-    or health version are not reused, so a cached run reproduces its own bytes exactly."""
+    """The folder name for one representation and runtime. The image-health definition is in it
+    too (the chunks hold health statistics): entries of another health version are not reused."""
     from oddling.data.health import HEALTH_VERSION
-    from oddling.data.intake import DECODER
 
-    text = json.dumps({"backbone": fingerprint, "runtime": runtime, "decoder": DECODER,
-                       "health_version": HEALTH_VERSION}, sort_keys=True)
+    text = json.dumps({"backbone": fingerprint, "runtime": runtime, "health_version": HEALTH_VERSION},
+                      sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:24]
 
 
