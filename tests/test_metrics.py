@@ -249,8 +249,6 @@ def test_importing_metrics_does_not_load_torch():
     assert out.stdout.strip() == "False"
 
 
-@pytest.mark.xfail(reason="oddling/__init__.py imports oddling.api, which imports detectors.patch and so torch; "
-                          "needs a lazy package __init__ (outside this module)", strict=False)
 def test_importing_metrics_through_the_package_does_not_load_torch():
     import subprocess
     import sys

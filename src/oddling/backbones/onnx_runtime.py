@@ -1,9 +1,12 @@
-"""Run a backbone with ONNX Runtime: export once into the cache, prove it agrees with PyTorch, reuse.
+"""Run a backbone from its ONNX export: export once into the cache, prove it agrees with PyTorch, reuse.
 
-Measured on 2 cores: ONNX Runtime runs EfficientNet-Lite0 several times faster than PyTorch
-eager for the same outputs (to ~1e-6). The export is keyed by backbone id, weight checksum,
-input size and export settings; it is checked against PyTorch on the first real batch it sees
-(max abs difference and cosine similarity) and refused if they disagree beyond fp32 tolerance.
+One export file serves two runtimes: ONNX Runtime (`OnnxSession`, here) and OpenVINO
+(`openvino_runtime.OpenVinoSession`). The export is keyed by backbone id, weight checksum,
+input size and export settings; each runtime checks it against PyTorch on the first real batch
+it embeds (max abs difference and cosine similarity of the unit-length embeddings) and records
+the result beside it (`.verified.json` for ONNX Runtime); an export that disagrees beyond fp32
+tolerance is deleted and refused. Once verified, nothing here needs torch: a process that only
+scores imports neither torch nor the network code.
 """
 from __future__ import annotations
 
@@ -14,7 +17,6 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
-import torch
 
 from oddling.errors import OddlingError
 
@@ -32,22 +34,23 @@ def available() -> bool:
     return True
 
 
-class _Features(torch.nn.Module):
-    def __init__(self, network: torch.nn.Module):
-        super().__init__()
-        self.network = network
-
-    def forward(self, x: torch.Tensor) -> torch.Tensor:
-        return self.network.features(x)
-
-
 def export_path(cache: Path, backbone_id: str, weights_sha256: str, input_size: int) -> Path:
     name = f"{backbone_id}-{weights_sha256[:16]}-{input_size}px-opset{OPSET}-v{EXPORT_VERSION}.onnx"
     return cache / "onnx" / name
 
 
-def export(network: torch.nn.Module, input_size: int, path: Path) -> Path:
+def export(network, input_size: int, path: Path) -> Path:
     """Export in eval mode with a dynamic batch axis; written to a temporary file, then renamed."""
+    import torch
+
+    class _Features(torch.nn.Module):
+        def __init__(self, network: torch.nn.Module):
+            super().__init__()
+            self.network = network
+
+        def forward(self, x: torch.Tensor) -> torch.Tensor:
+            return self.network.features(x)
+
     path.parent.mkdir(parents=True, exist_ok=True)
     module = _Features(network).eval().to(memory_format=torch.contiguous_format)
     dummy = torch.zeros(2, 3, input_size, input_size)
@@ -68,14 +71,82 @@ def export(network: torch.nn.Module, input_size: int, path: Path) -> Path:
     return path
 
 
+def unit_rows(x: np.ndarray) -> np.ndarray:
+    x = np.asarray(x, dtype=np.float64)
+    return x / np.maximum(np.linalg.norm(x, axis=1, keepdims=True), 1e-12)
+
+
 def agreement(a: np.ndarray, b: np.ndarray) -> dict:
     """Max abs difference and smallest cosine similarity between two sets of unit vectors."""
     cos = np.sum(a * b, axis=1) / (np.linalg.norm(a, axis=1) * np.linalg.norm(b, axis=1))
     return {"max_abs_diff": float(np.abs(a - b).max()), "min_cosine": float(cos.min())}
 
 
-class OnnxSession:
+class ExportSession:
+    """What every runtime of the ONNX export shares: `features(batch)`, and `verify` against
+    PyTorch on the first real batch, recorded in `verified_file`.
+
+    Subclasses set `runtime` (the name in the embedding cache key), `label` (for messages) and
+    `verified_file`, and implement `features`.
+    """
+
+    runtime = "onnx"
+    label = "ONNX export"
+
+    def __init__(self, path: Path, verified_file: Path):
+        self.path = Path(path)
+        self.verified_file = verified_file
+        self.verified = self.verified_file.is_file()
+        self.check: dict | None = self._read_check()
+
+    def _read_check(self) -> dict | None:
+        if not self.verified:
+            return None
+        try:
+            return json.loads(self.verified_file.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            return None
+
+    def features(self, batch: np.ndarray) -> np.ndarray:   # pragma: no cover - abstract
+        raise NotImplementedError
+
+    def refuse(self, message: str) -> None:
+        """Delete the export and every runtime's record of it, then raise: the next run exports again."""
+        self.path.unlink(missing_ok=True)
+        for record in self.path.parent.glob(f"{self.path.stem}.*verified.json"):
+            record.unlink(missing_ok=True)
+        raise OddlingError(message)
+
+    def verify(self, torch_features: np.ndarray, export_features: np.ndarray) -> dict:
+        """Record the agreement, or refuse the export (file removed) if it is beyond tolerance."""
+        a, b = unit_rows(torch_features), unit_rows(export_features)
+        check = agreement(a, b) | {"n_images": int(len(a))} | self.versions()
+        if not (check["max_abs_diff"] <= MAX_ABS_DIFF and check["min_cosine"] >= MIN_COSINE):
+            self.refuse(
+                f"{self.label} {self.path.name} disagrees with PyTorch (max abs diff {check['max_abs_diff']:.2e}, "
+                f"min cosine {check['min_cosine']:.6f}); export refused, use {self.fallback_hint()}")
+        self.verified_file.write_text(json.dumps(check, indent=2) + "\n")
+        self.verified, self.check = True, check
+        print(f"oddling: {self.label} verified against PyTorch on {check['n_images']} images "
+              f"(max abs diff {check['max_abs_diff']:.1e})", file=sys.stderr)
+        return check
+
+    def verify_first(self, batch: np.ndarray, features: np.ndarray, torch_features) -> dict:
+        """Verify on the first real batch; `torch_features()` gives PyTorch's features for it."""
+        return self.verify(torch_features(), features)
+
+    def versions(self) -> dict:
+        return {}
+
+    def fallback_hint(self) -> str:
+        return "--runtime torch"
+
+
+class OnnxSession(ExportSession):
     """An ONNX Runtime session for one exported backbone, verified on first use."""
+
+    runtime = "onnx"
+    label = "ONNX export"
 
     def __init__(self, path: Path, threads: int | None = None):
         import onnxruntime as ort
@@ -83,30 +154,8 @@ class OnnxSession:
         options = ort.SessionOptions()
         options.intra_op_num_threads = threads or (os.cpu_count() or 1)
         options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
-        self.path = path
+        super().__init__(path, Path(path).with_suffix(".verified.json"))
         self.session = ort.InferenceSession(str(path), options, providers=["CPUExecutionProvider"])
-        self.verified_file = path.with_suffix(".verified.json")
-        self.verified = self.verified_file.is_file()
 
     def features(self, batch: np.ndarray) -> np.ndarray:
         return self.session.run(None, {"images": np.ascontiguousarray(batch, dtype=np.float32)})[0]
-
-    def verify(self, torch_features: np.ndarray, onnx_features: np.ndarray) -> dict:
-        """Record the agreement, or refuse the export (file removed) if it is beyond tolerance."""
-        a = torch_features / np.linalg.norm(torch_features, axis=1, keepdims=True)
-        b = onnx_features / np.linalg.norm(onnx_features, axis=1, keepdims=True)
-        check = agreement(a, b) | {"n_images": int(len(a))}
-        if check["max_abs_diff"] > MAX_ABS_DIFF or check["min_cosine"] < MIN_COSINE:
-            self.path.unlink(missing_ok=True)
-            raise OddlingError(
-                f"ONNX export {self.path.name} disagrees with PyTorch (max abs diff {check['max_abs_diff']:.2e}, "
-                f"min cosine {check['min_cosine']:.6f}); export refused, use --runtime torch")
-        self.verified = True
-        try:
-            self.verified_file.write_text(json.dumps(check, indent=2) + "\n")
-            recorded = ""
-        except OSError as exc:   # a read-only cache: the check holds for this run, and is made again next time
-            recorded = f"; not recorded, {self.verified_file.parent} is not writable ({exc.strerror or exc})"
-        print(f"oddling: ONNX export verified against PyTorch on {check['n_images']} images "
-              f"(max abs diff {check['max_abs_diff']:.1e}){recorded}", file=sys.stderr)
-        return check

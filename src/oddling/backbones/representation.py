@@ -128,7 +128,19 @@ class Representation:
         out = self.spec.to_dict() | {"preprocessing": self.preprocessing.to_dict(), "dim": self.embedding_dim}
         if self.backbone is not None:
             out["backbone_fingerprint"] = self.backbone.fingerprint()
+            check = self.precision_check()
+            if check is not None:
+                out["precision_check"] = check
         return out
+
+    def precision_check(self) -> dict | None:
+        """For a reduced precision (bf16): how its embeddings compared with fp32 on the first batch
+        it was checked on (recorded in the bank); None in fp32."""
+        if self.backbone is None or self.backbone.precision == "fp32" or self.backbone.onnx is None:
+            return None
+        check = self.backbone.onnx.check or {}
+        return {key: check[key] for key in ("precision", "n_images", "min_cosine", "spearman_knn_ranking",
+                                             "min_cosine_required", "min_spearman_required") if key in check}
 
     def cache_fingerprint(self) -> dict:
         # Embeddings keep the key they always had, so caches made before representations existed still serve.
@@ -169,7 +181,8 @@ def _stage_channels(backbone, stages: tuple[str, ...]) -> int:
 
 
 def load_representation(spec: RepresentationSpec | str, cache=None, runtime: str = "auto") -> Representation:
-    """Load what a representation needs (a verified backbone, unless it is `pixels`)."""
+    """Load what a representation needs (a verified backbone, unless it is `pixels`). `runtime`
+    may carry a precision for the embedding ("auto:bf16", see backbones.split_runtime)."""
     if isinstance(spec, str):
         spec = RepresentationSpec.parse(spec)
     if spec.kind == "pixels":
@@ -181,7 +194,8 @@ def load_representation(spec: RepresentationSpec | str, cache=None, runtime: str
     if spec.kind == "embedding":
         net = load_backbone(spec.backbone, cache, runtime)
         return Representation(spec, net.preprocessing, net.embedding_dim, net, _embed=net.embed)
-    # Intermediate stages come from the PyTorch network: no export to make.
+    # Intermediate stages come from the PyTorch network (in fp32 whatever precision was asked):
+    # no export to make.
     net = load_backbone(spec.backbone, cache, "torch")
     channels = _stage_channels(net, spec.stages)
     if spec.kind == "stages":

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import click
 
-from oddling.backbones import RUNTIMES
+from oddling.backbones import PRECISIONS, RUNTIMES
 from oddling.errors import OddlingError
 from oddling.jobs.common import RunOptions
 
@@ -59,12 +59,23 @@ def user_errors(func):
 
 
 def run_options(func):
-    """Options every embedding command shares."""
+    """Options every embedding command shares. `--precision` is folded into the runtime text
+    ("openvino:bf16") that the command hands to RunOptions, so commands need no extra parameter."""
+
+    @functools.wraps(func)
+    def with_precision(*args, precision: str = "fp32", **kwargs):
+        if precision != "fp32":
+            kwargs["runtime"] = f"{kwargs.get('runtime', 'auto')}:{precision}"
+        return func(*args, **kwargs)
+
     options = [
         click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
                      help="Folder for weights and caches [default: $ODDLING_CACHE_DIR or the user cache folder]."),
         click.option("--runtime", type=click.Choice(RUNTIMES), default="auto", show_default=True,
-                     help="Inference runtime; auto = ONNX Runtime when installed, else PyTorch."),
+                     help="Inference runtime; auto = OpenVINO when installed, else ONNX Runtime, else PyTorch."),
+        click.option("--precision", type=click.Choice(PRECISIONS), default="fp32", show_default=True,
+                     help="Network precision; bf16 (OpenVINO, CPUs with bf16 units) is checked against fp32 "
+                          "on the first batch of each run and refused if it changes the embeddings."),
         click.option("--batch-size", type=click.IntRange(min=1), default=32, show_default=True,
                      help="Images per network call."),
         click.option("--workers", type=click.IntRange(min=1), default=None,
@@ -73,8 +84,8 @@ def run_options(func):
         click.option("--quiet", "-q", is_flag=True, help="No progress bar."),
     ]
     for option in reversed(options):
-        func = option(func)
-    return func
+        with_precision = option(with_precision)
+    return with_precision
 
 
 # Options several commands share, declared once.

@@ -42,21 +42,53 @@ class Preprocessing:
         data["std"] = list(self.std)
         return data
 
-    def resize_and_crop(self, image: Image.Image) -> Image.Image:
-        """Shorter side to `resize_shorter`, then the centred `crop` x `crop` square."""
+    def resize(self, image: Image.Image) -> Image.Image:
+        """Shorter side to `resize_shorter` (the image itself when it already has that size)."""
         w, h = image.size
         scale = self.resize_shorter / min(w, h)
         # Round like torchvision's Resize so results match the usual pipelines.
         new_w, new_h = (self.resize_shorter, max(1, int(h * scale))) if w <= h else (max(1, int(w * scale)), self.resize_shorter)
         if (new_w, new_h) != (w, h):
             image = image.resize((new_w, new_h), _INTERPOLATION[self.interpolation])
+        return image
+
+    def crop_centre(self, image: Image.Image) -> Image.Image:
+        """The centred `crop` x `crop` square of an image resized by `resize`."""
+        new_w, new_h = image.size
         left = int(round((new_w - self.crop) / 2.0))
         top = int(round((new_h - self.crop) / 2.0))
         return image.crop((left, top, left + self.crop, top + self.crop))
 
+    def resize_and_crop(self, image: Image.Image) -> Image.Image:
+        """Shorter side to `resize_shorter`, then the centred `crop` x `crop` square."""
+        return self.crop_centre(self.resize(image))
+
+    def normalise(self, image: Image.Image) -> np.ndarray:
+        """An RGB image of the crop's size -> (3, crop, crop) float32, (x - mean) / std per channel.
+
+        Through a 256-entry table per channel built with the same float32 operations as the
+        direct formula, so the values are bit for bit those of ((x - mean) / std), at a third of
+        the memory traffic.
+        """
+        pixels = np.asarray(image, dtype=np.uint8)
+        tables = self._tables()
+        out = np.empty((3,) + pixels.shape[:2], dtype=np.float32)
+        for c in range(3):
+            np.take(tables[c], pixels[..., c], out=out[c])
+        return out
+
+    def _tables(self) -> np.ndarray:
+        tables = _TABLES.get(self)
+        if tables is None:
+            levels = np.arange(256, dtype=np.float32)[:, None]
+            mean = np.asarray(self.mean, dtype=np.float32)
+            std = np.asarray(self.std, dtype=np.float32)
+            tables = _TABLES[self] = np.ascontiguousarray(((levels - mean) / std).T)
+        return tables
+
     def to_array(self, image: Image.Image) -> np.ndarray:
         """(3, crop, crop) float32, normalised."""
-        pixels = np.asarray(self.resize_and_crop(image), dtype=np.float32)
-        mean = np.asarray(self.mean, dtype=np.float32)
-        std = np.asarray(self.std, dtype=np.float32)
-        return np.ascontiguousarray(((pixels - mean) / std).transpose(2, 0, 1))
+        return self.normalise(self.resize_and_crop(image))
+
+
+_TABLES: dict[Preprocessing, np.ndarray] = {}   # per preprocessing: (3, 256) float32 lookup tables

@@ -13,10 +13,11 @@ from dataclasses import dataclass
 
 import faiss
 import numpy as np
-import torch
-import torch.nn.functional as F
 
 from oddling.data.preprocess import Preprocessing
+
+# torch is imported inside the functions that run the network or its tensor ops, so loading a
+# patch bank (`bank info`, `drift --history`) does not import it.
 
 MODE = "local"
 # Ends of the 24-channel (stride 4, block index 2) and 40-channel (stride 8, block 4) stages of
@@ -42,7 +43,6 @@ def grid_size(crop: int) -> int:
     return crop // STRIDE
 
 
-@torch.inference_mode()
 def patch_features(network, batch: np.ndarray, stages: tuple[str, ...] = ("stage2", "stage3")) -> np.ndarray:
     """(N, 3, S, S) preprocessed -> (N, G*G, C) float32 patch features, G = S/8.
 
@@ -51,16 +51,20 @@ def patch_features(network, batch: np.ndarray, stages: tuple[str, ...] = ("stage
     averaged over its 3x3 neighbourhood (local context, as in PatchCore), resized to the common
     grid and the channels concatenated in the order of `stages`.
     """
-    x = torch.from_numpy(np.ascontiguousarray(batch, dtype=np.float32)).contiguous(memory_format=torch.channels_last)
-    grid = grid_size(batch.shape[-1])
-    outputs = []
-    for y in network.forward_intermediates(x, stages):
-        y = F.avg_pool2d(y, 3, stride=1, padding=1, count_include_pad=False)
-        if y.shape[-1] != grid:
-            y = F.interpolate(y, size=(grid, grid), mode="bilinear", align_corners=False)
-        outputs.append(y)
-    feats = torch.cat(outputs, dim=1).permute(0, 2, 3, 1)
-    return np.ascontiguousarray(feats.reshape(len(batch), grid * grid, -1).float().numpy())
+    import torch
+    import torch.nn.functional as F
+
+    with torch.inference_mode():
+        x = torch.from_numpy(np.ascontiguousarray(batch, dtype=np.float32)).contiguous(memory_format=torch.channels_last)
+        grid = grid_size(batch.shape[-1])
+        outputs = []
+        for y in network.forward_intermediates(x, stages):
+            y = F.avg_pool2d(y, 3, stride=1, padding=1, count_include_pad=False)
+            if y.shape[-1] != grid:
+                y = F.interpolate(y, size=(grid, grid), mode="bilinear", align_corners=False)
+            outputs.append(y)
+        feats = torch.cat(outputs, dim=1).permute(0, 2, 3, 1)
+        return np.ascontiguousarray(feats.reshape(len(batch), grid * grid, -1).float().numpy())
 
 
 def random_projection(dim: int, out_dim: int = PROJECTION_DIM, seed: int = SEED) -> np.ndarray:
@@ -72,6 +76,8 @@ def random_projection(dim: int, out_dim: int = PROJECTION_DIM, seed: int = SEED)
 def greedy_k_center(points: np.ndarray, n_centers: int, first: int = 0) -> np.ndarray:
     """Indices of `n_centers` points chosen greedily: each next centre is the point farthest from
     the centres so far. Its covering radius is at most twice the optimum (Gonzalez 1985)."""
+    import torch
+
     n = len(points)
     if not 1 <= n_centers <= n:
         raise ValueError(f"n_centers must be in [1, {n}], got: {n_centers}")
@@ -141,6 +147,8 @@ def upsample_map(grid_map: np.ndarray, size: tuple[int, int], crop: int = 224, s
     then resizing to the square's side in the image; outside that square (non-square images)
     nothing was analysed and the map is 0.
     """
+    import torch
+    import torch.nn.functional as F
     from scipy.ndimage import gaussian_filter
 
     width, height = size

@@ -1,7 +1,7 @@
 """On-disk cache of embeddings, keyed by file content and everything that shapes the vector.
 
 Layout: <cache>/embeddings/<key>/chunk-*.npz, where <key> digests the backbone id, weight
-SHA-256, preprocessing and runtime; each chunk holds `sha256` (file content hashes),
+SHA-256, preprocessing, runtime (with its precision) and health definition; each chunk holds `sha256` (file content hashes),
 `vectors`, `health` (the image statistics of health.STATS) and `mac`. Chunks are written to a
 temporary name and renamed, so a reader never sees half a chunk and two processes sharing the
 cache never write the same file. Work is flushed every FLUSH_EVERY new vectors and when a run
@@ -50,7 +50,12 @@ def _warn(message: str) -> None:
 
 
 def cache_key(fingerprint: dict, runtime: str) -> str:
-    text = json.dumps({"backbone": fingerprint, "runtime": runtime}, sort_keys=True)
+    """The folder name for one representation and runtime. The image-health definition is in it
+    too (the chunks hold health statistics): entries of another health version are not reused."""
+    from oddling.data.health import HEALTH_VERSION
+
+    text = json.dumps({"backbone": fingerprint, "runtime": runtime, "health_version": HEALTH_VERSION},
+                      sort_keys=True)
     return hashlib.sha256(text.encode()).hexdigest()[:24]
 
 

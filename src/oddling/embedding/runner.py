@@ -17,7 +17,7 @@ from tqdm import tqdm
 
 from oddling.backbones import Backbone
 from oddling.embedding.cache import EmbeddingCache
-from oddling.data.health import STATS, image_stats
+from oddling.data.health import DECODE_SIDE, STATS, health_image, is_health_resize, reduced_stats
 from oddling.data.intake import ORIGINAL_SIZE, IntakeError, check_type, load_rgb, sha256_file
 from oddling.data.preprocess import Preprocessing
 
@@ -67,11 +67,16 @@ def _prepare(path: Path, preprocessing: Preprocessing, cache: EmbeddingCache | N
     if cache is not None and cache.get(digest) is not None:
         return digest, None, None, _CACHED
     try:
-        image = load_rgb(path, min_side=preprocessing.resize_shorter)
+        # Large enough for the network and for the health image (shorter side HEALTH_SIDE).
+        image = load_rgb(path, min_side=max(preprocessing.resize_shorter, DECODE_SIDE))
     except IntakeError as exc:
         return digest, None, None, exc.status
-    stats = image_stats(image, *image.info[ORIGINAL_SIZE])
-    return digest, preprocessing.to_array(image), np.array([stats[s] for s in STATS]), OK
+    resized = preprocessing.resize(image)
+    # The default backbones' resize is the health image itself: the statistics cost no resize.
+    health = resized if is_health_resize(preprocessing, image.size) else health_image(image)
+    stats = reduced_stats(health, *image.info[ORIGINAL_SIZE])
+    array = preprocessing.normalise(preprocessing.crop_centre(resized))
+    return digest, array, np.array([stats[s] for s in STATS]), OK
 
 
 def embed_files(
