@@ -231,14 +231,14 @@ def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None 
     except OSError as exc:
         # A cache folder that cannot be written: the export runtimes need the file, PyTorch does not.
         if runtime != "auto":
-            raise OddlingError(f"runtime {chosen!r}: cannot write the export into {onnx_file.parent} "
+            raise OddlingError(f"runtime {chosen!r}: cannot write the ONNX export into {onnx_file.parent} "
                                f"({exc.strerror or exc}); pass --cache-dir with a writable folder, or use "
                                "--runtime torch") from exc
         import warnings
 
         from oddling.jobs.common import OddlingWarning
 
-        warnings.warn(f"cannot write the export into {onnx_file.parent} ({exc.strerror or exc}): running with "
+        warnings.warn(f"cannot write the ONNX export into {onnx_file.parent} ({exc.strerror or exc}): running with "
                       "PyTorch instead (slower, same results); pass --cache-dir with a writable folder",
                       OddlingWarning, stacklevel=2)
         return Backbone(spec, sha, factory())
