@@ -88,7 +88,9 @@ def test_damaged_chunk_is_ignored_and_recomputed(digits_folders, digits_bank, tm
     oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
     for chunk in (cache / "embeddings").rglob("chunk-*.npz"):
         chunk.write_bytes(b"garbage")
-    again = oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
+    with pytest.warns(oddling.OddlingWarning, match="damaged chunk") as record:   # said once, not fatal
+        again = oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
+    assert len([w for w in record if issubclass(w.category, oddling.OddlingWarning)]) == 1
     assert again.to_csv() == reference_csv
 
 

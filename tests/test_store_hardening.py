@@ -791,3 +791,36 @@ def test_partial_files_of_killed_writers_are_removed_on_the_next_write(tmp_path)
         (folder / f".chunk-{pid:032x}.npz.partial-{pid}").write_bytes(b"half")
     EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
     assert sorted(p.name for p in folder.glob(".chunk-*")) == [f".chunk-{alive:032x}.npz.partial-{alive}"]
+
+
+def test_a_half_replaced_bank_that_cannot_be_put_back_is_one_clear_error(tmp_path, monkeypatch):
+    import oddling.bank.store as store
+    from oddling.bank.store import load_bank
+
+    target = _crash_a_save(tmp_path, "between renames")
+
+    def refuse(src, dst):
+        raise OSError(errno.EROFS, os.strerror(errno.EROFS))
+
+    monkeypatch.setattr(store.os, "replace", refuse)          # a read-only file system
+    with pytest.raises(OddlingError, match="half replaced .* cannot be put right"):
+        load_bank(target)
+
+
+def test_a_bank_saved_when_its_undo_copy_cannot_be_kept_warns_and_is_saved(tmp_path, monkeypatch):
+    import oddling.bank.store as store
+    from oddling.bank.store import load_bank
+    from oddling.jobs.common import OddlingWarning
+    from test_bank import small_bank
+
+    target = _versions(tmp_path, "1")
+
+    def full(target, old):
+        raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC))
+
+    monkeypatch.setattr(store, "_keep_as_previous", full)
+    bank = small_bank()
+    bank.tool_version = "2"
+    with pytest.warns(OddlingWarning, match="could not be kept"):
+        store.save_bank(bank, target, force=True)
+    assert load_bank(target).tool_version == "2"

@@ -237,7 +237,11 @@ def _save_locked(bank: Bank, target: Path, force: bool) -> None:
             except BaseException:
                 os.replace(old, target)
                 raise
-            _keep_as_previous(target, old)
+            try:
+                _keep_as_previous(target, old)
+            except OSError as exc:     # the new bank is in place; only the undo copy is missing
+                _warn(f"bank {target} was saved, but the version it replaced could not be kept for "
+                      f"`oddling bank undo` ({exc.strerror or exc})")
         else:
             os.replace(tmp, target)
     except BaseException as exc:
@@ -357,6 +361,14 @@ def recover(target: str | os.PathLike) -> None:
     found = _leftovers(target)
     if not found:
         return
+    try:
+        _recover(target, found)
+    except OSError as exc:
+        raise OddlingError(f"bank {target} was left half replaced by a write that stopped, and cannot be put "
+                           f"right ({exc.strerror or exc}); its previous state is in {found[0][2]}") from exc
+
+
+def _recover(target: Path, found: list[tuple[str, int, Path]]) -> None:
     if not target.exists():
         olds = sorted((p for kind, _, p in found if kind == "old" and is_bank(p)), key=_mtime)
         if olds:
