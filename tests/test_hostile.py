@@ -390,3 +390,22 @@ def test_decisions_csv_cannot_reach_outside_the_scored_folder(tmp_path):
             _read_decisions(decisions, scored)
     decisions.write_text("path,decision\nok.png,normal\n", encoding="utf-8")
     assert _read_decisions(decisions, scored) == [scored / "ok.png"]
+
+
+def test_animated_gif_status_says_only_the_first_frame_was_scored(tmp_path):
+    """Multi-frame files: the scores CSV says "ok (first of 3 frames)", with a warm cache or without."""
+    import oddling
+
+    refs = tmp_path / "refs"
+    refs.mkdir()
+    for i in range(12):
+        Image.new("RGB", (24, 24), (20 * i, 100, 150)).save(refs / f"r{i}.png")
+    bank = oddling.fit(refs, tmp_path / "b", representation="pixels:16", target_fpr=0.1,
+                       options=oddling.RunOptions(progress=False))
+    incoming = tmp_path / "in"
+    incoming.mkdir()
+    frames = [Image.new("RGB", (24, 24), c) for c in ((10, 10, 10), (200, 0, 0), (0, 200, 0))]
+    frames[0].save(incoming / "anim.gif", save_all=True, append_images=frames[1:])
+    for use_cache in (True, True, False):   # cold cache, warm cache, no cache
+        result = oddling.score(incoming, bank, options=oddling.RunOptions(progress=False, use_cache=use_cache))
+        assert "ok (first of 3 frames)" in result.to_csv()

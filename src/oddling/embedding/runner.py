@@ -18,7 +18,7 @@ from tqdm import tqdm
 from oddling.backbones import Backbone
 from oddling.embedding.cache import EmbeddingCache
 from oddling.data.health import DECODE_SIDE, STATS, health_image, is_health_resize, reduced_stats
-from oddling.data.intake import ORIGINAL_SIZE, IntakeError, check_type, load_rgb, sha256_file
+from oddling.data.intake import ORIGINAL_SIZE, IntakeError, check_header, check_type, frames_note, load_rgb, sha256_file
 from oddling.data.preprocess import Preprocessing
 
 OK = "ok"
@@ -33,6 +33,7 @@ class FileRecord:
     sha256: str | None
     status: str
     row: int | None = None
+    note: str = ""     # about an ok file, e.g. "first of 3 frames"; status stays "ok"
 
 
 @dataclass
@@ -51,6 +52,21 @@ class EmbeddedFiles:
 
 def default_workers() -> int:
     return max(1, min(4, os.cpu_count() or 1))
+
+
+# Formats that can hold more than one frame (APNG counts); JPEG and BMP never do.
+_MULTI_FRAME_SUFFIXES = frozenset({".gif", ".tif", ".tiff", ".webp", ".png"})
+
+
+def frames_note_of(path: Path) -> str:
+    """"first of N frames" when only the first frame of an animation or multi-page file is scored;
+    read from the header, so it is the same whether the features came from the cache or not."""
+    if path.suffix.lower() not in _MULTI_FRAME_SUFFIXES:
+        return ""
+    try:
+        return frames_note(check_header(path))
+    except (IntakeError, OSError):
+        return ""
 
 
 def _prepare(path: Path, preprocessing: Preprocessing, cache: EmbeddingCache | None = None):
@@ -120,13 +136,13 @@ def embed_files(
                     rel = path.relative_to(root).as_posix()
                     if status == _CACHED:
                         vector, stats = cache.get(digest)
-                        records.append(FileRecord(rel, digest, OK, len(vectors)))
+                        records.append(FileRecord(rel, digest, OK, len(vectors), frames_note_of(path)))
                         vectors.append(vector)
                         health.append(stats)
                     elif array is None:
                         records.append(FileRecord(rel, digest, status))
                     else:
-                        records.append(FileRecord(rel, digest, OK, len(vectors)))
+                        records.append(FileRecord(rel, digest, OK, len(vectors), frames_note_of(path)))
                         vectors.append(None)   # filled in below, once the batch has run
                         health.append(stats)
                         to_embed.append((len(vectors) - 1, digest, array))

@@ -110,7 +110,7 @@ def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None) -> tuple[
     scored, p_values, flagged, _ = score_features(bank, embedded.embeddings, target_fpr)
     rows = []
     for rec in embedded.records:
-        row = ScoreRow(path=rec.path, status=rec.status, sha256=rec.sha256)
+        row = ScoreRow(path=rec.path, status=rec.status, sha256=rec.sha256, note=rec.note)
         if rec.row is not None:
             i = rec.row
             row.health = health_text(health_findings(embedded.health_of(rec), bank.health_fences))
