@@ -127,7 +127,9 @@ def embed_paths(base: Path, paths: list[Path], representation, options: RunOptio
         folder = cache_dir(options.cache_dir)
         try:
             cache = EmbeddingCache.open(folder, representation.cache_fingerprint(), representation.runtime,
-                                        dim=representation.embedding_dim)
+                                        dim=representation.embedding_dim,
+                                        # network features are unit length; a pixel thumbnail of a flat image is 0
+                                        unit_norm=representation.spec.kind in ("embedding", "stages"))
             with tempfile.TemporaryFile(dir=cache.folder):   # it saves as the run goes: it must be writable
                 pass
         except OSError as exc:
