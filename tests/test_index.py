@@ -159,7 +159,7 @@ def bank_of(detector, features):
         calibration={"method": detector.describe_calibration(), "n": len(detector.calibration_scores_),
                      "target_fpr": 0.01, "cutoff": ConformalThreshold(detector.calibration_scores_, 0.01).cutoff},
         reference_root="/refs", tool_version="0", created="2026-01-01T00:00:00+00:00",
-        health_stats=np.zeros((n, 1)))
+        health_stats=np.zeros((n, 7)))
 
 
 @pytest.mark.parametrize("kind", ["ivf", "hnsw"])

@@ -125,10 +125,14 @@ class ExportSession:
             self.refuse(
                 f"{self.label} {self.path.name} disagrees with PyTorch (max abs diff {check['max_abs_diff']:.2e}, "
                 f"min cosine {check['min_cosine']:.6f}); export refused, use {self.fallback_hint()}")
-        self.verified_file.write_text(json.dumps(check, indent=2) + "\n")
+        try:
+            self.verified_file.write_text(json.dumps(check, indent=2) + "\n")
+            recorded = ""
+        except OSError as exc:   # a read-only cache: the check holds for this run, and is made again next time
+            recorded = f"; not recorded, {self.verified_file.parent} is not writable ({exc.strerror or exc})"
         self.verified, self.check = True, check
         print(f"oddling: {self.label} verified against PyTorch on {check['n_images']} images "
-              f"(max abs diff {check['max_abs_diff']:.1e})", file=sys.stderr)
+              f"(max abs diff {check['max_abs_diff']:.1e}){recorded}", file=sys.stderr)
         return check
 
     def verify_first(self, batch: np.ndarray, features: np.ndarray, torch_features) -> dict:
