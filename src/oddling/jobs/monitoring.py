@@ -50,23 +50,34 @@ def drift(
         "batch": str(incoming_dir),
         "n_batch": n,
         "n_bank": bank.size,
+    } | shift_figures(mmd, share, int(flagged.sum()), shift, n_permutations)
+    if record and bank.path is not None:
+        record_history(bank, result)
+    return result
+
+
+def shift_figures(mmd: dict, share: dict, n_flagged: int, shift: bool, n_permutations: int) -> dict:
+    """The two tests' figures and the verdict, as a drift result reports them (batch or log)."""
+    return {
         "mmd": json_number(float(np.sqrt(max(mmd["mmd2"], 0.0)))),
         "mmd2": json_number(mmd["mmd2"]),
         "mmd_p_value": json_number(mmd["p_value"]),
         "mmd_bandwidth": json_number(mmd["bandwidth"]),
         "n_permutations": n_permutations,
-        "n_flagged": int(flagged.sum()),
+        "n_flagged": n_flagged,
         "flagged_share": json_number(share["flagged_share"]),
         "expected_share": share["expected_share"],
         "binomial_p_value": json_number(share["binomial_p_value"]),
         "shift": bool(shift),
         "rule": "shift when either p-value < 0.025 (0.05 split over the two tests, Bonferroni)",
     }
-    if record and bank.path is not None:
-        entry = {"time": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()} | result
-        with open(Path(bank.path) / HISTORY_FILE, "a", encoding="utf-8") as f:
-            f.write(json.dumps(entry, sort_keys=True) + "\n")
-    return result
+
+
+def record_history(bank: Bank, result: dict) -> None:
+    """One line per check in the bank's drift history, with the time."""
+    entry = {"time": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()} | result
+    with open(Path(bank.path) / HISTORY_FILE, "a", encoding="utf-8") as f:
+        f.write(json.dumps(entry, sort_keys=True) + "\n")
 
 
 def drift_history(bank_path: str | os.PathLike) -> list[dict]:

@@ -8,8 +8,6 @@ of the MMD test and counted (`n_without_features`); `--no-cache` runs leave only
 """
 from __future__ import annotations
 
-import datetime as _dt
-import json
 import os
 import uuid
 from pathlib import Path
@@ -19,7 +17,6 @@ import numpy as np
 from oddling.data.intake import display_path, path_from_display
 from oddling.errors import OddlingError
 from oddling.logbook.store import EXPORT_COLUMNS, LogRow, ScoreLog, bank_fingerprint
-from oddling.numbers import json_number
 
 
 def new_request_id() -> str:
@@ -115,6 +112,7 @@ def drift_over_log(log: ScoreLog, bank, *, last: int | None = None, since: str |
     from oddling.evaluation.shift import flagged_share_test, mmd_permutation_test, shift_verdict
     from oddling.jobs.common import RunOptions, load_bank_representation
     from oddling.jobs.maintenance import require_features
+    from oddling.jobs.monitoring import record_history, shift_figures
 
     if (last is None) == (since is None):
         raise OddlingError("give one of --last N or --since TIME")
@@ -151,24 +149,9 @@ def drift_over_log(log: ScoreLog, bank, *, last: int | None = None, since: str |
         "n_batch": len(features),
         "n_without_features": len(set(r.sha256 for r in rows if r.sha256)) - len(kept),
         "n_bank": bank.size,
-        "mmd": json_number(float(np.sqrt(max(mmd["mmd2"], 0.0)))),
-        "mmd2": json_number(mmd["mmd2"]),
-        "mmd_p_value": json_number(mmd["p_value"]),
-        "mmd_bandwidth": json_number(mmd["bandwidth"]),
-        "n_permutations": n_permutations,
-        "n_flagged": n_flagged,
-        "flagged_share": json_number(share["flagged_share"]),
-        "expected_share": share["expected_share"],
-        "binomial_p_value": json_number(share["binomial_p_value"]),
-        "shift": bool(shift),
-        "rule": "shift when either p-value < 0.025 (0.05 split over the two tests, Bonferroni)",
-    }
+    } | shift_figures(mmd, share, n_flagged, shift, n_permutations)
     if record and bank.path is not None:
-        from oddling.bank.store import HISTORY_FILE
-
-        entry = {"time": _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()} | result
-        with open(Path(bank.path) / HISTORY_FILE, "a", encoding="utf-8") as f:
-            f.write(json.dumps(entry, sort_keys=True) + "\n")
+        record_history(bank, result)
     return result
 
 
