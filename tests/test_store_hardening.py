@@ -12,6 +12,7 @@ from __future__ import annotations
 import builtins
 import errno
 import io
+import json
 import os
 import warnings
 from pathlib import Path
@@ -560,6 +561,23 @@ def test_a_crash_between_the_two_renames_is_undone_on_the_next_load(tmp_path):
         bank = load_bank(target)
     assert bank.tool_version == "0.1.0"                               # the bank before the failed save
     assert os.listdir(tmp_path) == ["b"]                               # no .writing-*, no .old-*, no lock
+
+
+def test_the_cli_puts_back_a_half_replaced_bank_too(tmp_path):
+    # The bank path is not required to exist on the command line: the folder a crashed save
+    # renamed aside is put back by the command itself, as by load_bank.
+    from click.testing import CliRunner
+
+    from oddling.cli import main
+
+    target = _crash_a_save(tmp_path, "between renames")
+    assert not target.exists()
+    result = CliRunner().invoke(main, ["bank", "info", str(target), "--json"])
+    assert result.exit_code == 0, result.output
+    assert json.loads(result.stdout)["tool_version"] == "0.1.0"
+    assert os.listdir(tmp_path) == ["b"]
+    missing = CliRunner().invoke(main, ["bank", "info", str(tmp_path / "never")])
+    assert missing.exit_code == 2 and "does not exist" in missing.output
 
 
 def test_a_crash_between_the_two_renames_is_undone_by_the_next_save(tmp_path):

@@ -508,6 +508,8 @@ def load_bank(path: str | os.PathLike) -> Bank:
     if not folder.exists() and _leftovers(folder):
         with bank_lock(folder):      # a save that stopped between its two renames: put the bank back
             recover(folder)
+    if not folder.exists():
+        raise OddlingError(f"bank {folder} does not exist; create one with `oddling fit`")
     if not meta_path.is_file():
         raise OddlingError(f"{folder} is not an oddling bank (no {METADATA_FILE}); create one with `oddling fit`")
     try:

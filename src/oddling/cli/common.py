@@ -89,8 +89,11 @@ def run_options(func):
 
 
 # Options several commands share, declared once.
+# A bank path is not checked for existence here: load_bank puts back a bank whose replacement
+# stopped half way (the folder renamed aside), and says in its own words when there is none.
+BANK_PATH = click.Path(file_okay=False, path_type=Path)
 bank_option = click.option(
-    "--bank", "bank_path", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
+    "--bank", "bank_path", required=True, type=BANK_PATH,
     help="Bank folder made by `oddling fit`.")
 target_fpr_override = click.option(
     "--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,

@@ -7,7 +7,7 @@ from pathlib import Path
 import click
 
 from oddling.backbones import RUNTIMES
-from oddling.cli.common import _print_json, bank_option, target_fpr_override, user_errors
+from oddling.cli.common import BANK_PATH, _print_json, bank_option, target_fpr_override, user_errors
 from oddling.data.intake import MAX_PIXELS_DEFAULT
 from oddling.errors import OddlingError
 from oddling.jobs.common import RunOptions
@@ -171,7 +171,7 @@ def log_source_options(func):
     options = [
         click.option("--log", "log_path", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
                      help="The log file [default: the bank's, <bank>.log.sqlite]."),
-        click.option("--bank", "bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path),
+        click.option("--bank", "bank_path", type=BANK_PATH,
                      default=None, help="Bank whose default log to read."),
     ]
     for option in reversed(options):

@@ -7,7 +7,7 @@ from pathlib import Path
 import click
 
 from oddling import api
-from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
+from oddling.cli.common import (BANK_PATH, EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
                                 target_fpr_override, user_errors)
 from oddling.errors import OddlingError
 from oddling.data.intake import display_path
@@ -16,9 +16,9 @@ from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 
 @click.command()
 @click.argument("incoming_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
-@click.option("--bank", "bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path),
+@click.option("--bank", "bank_path", type=BANK_PATH,
               help="Bank to compare the batch with.")
-@click.option("--history", "history_bank", type=click.Path(exists=True, file_okay=False, path_type=Path),
+@click.option("--history", "history_bank", type=BANK_PATH,
               help="Instead of testing a batch: read this bank's history of checks (with --plot).")
 @click.option("--plot", "plot_path", type=click.Path(path_type=Path),
               help="With --history: draw flagged share and MMD over time into this PNG.")
@@ -113,7 +113,7 @@ def bank_group():
 
 
 @bank_group.command("info")
-@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("bank_path", type=BANK_PATH)
 @click.option("--json", "as_json", is_flag=True, help="Print as JSON.")
 @user_errors
 def bank_info(bank_path, as_json):
@@ -136,7 +136,7 @@ def bank_info(bank_path, as_json):
 
 
 @bank_group.command("add")
-@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("bank_path", type=BANK_PATH)
 @click.argument("source", type=click.Path(exists=True, path_type=Path))
 @click.option("--root", type=click.Path(exists=True, file_okay=False, path_type=Path), default=None,
               help="Folder the decisions CSV's relative paths start from [default: the CSV's folder].")
@@ -156,7 +156,7 @@ def bank_add(bank_path, source, root, **run):
 
 
 @bank_group.command("remove")
-@click.argument("bank_path", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("bank_path", type=BANK_PATH)
 @click.argument("items", nargs=-1, required=True)
 @click.option("--kind", "kinds", multiple=True, type=click.Choice(AUDIT_KINDS),
               help="With an audit JSON: remove the findings of this kind (repeatable).")
