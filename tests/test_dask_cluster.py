@@ -1,0 +1,181 @@
+"""Embedding on a Dask cluster (`--dask ADDRESS`, RunOptions(dask=...)): the outputs must be
+byte-identical to a local run (the determinism contract of the design notes: "the same inputs,
+bank and seed give byte-identical CSV and JSON, locally or on a Dask cluster"), also when a
+worker dies mid-run. The cluster is Dask's own LocalCluster with worker processes, as its
+documentation recommends for tests that need real processes."""
+from __future__ import annotations
+
+import os
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+from click.testing import CliRunner
+
+distributed = pytest.importorskip("distributed")
+
+import oddling  # noqa: E402
+from oddling.cli import main  # noqa: E402
+from oddling.embedding.cluster import shard_length  # noqa: E402
+from oddling.errors import OddlingError  # noqa: E402
+
+PIXELS = "pixels:16"   # no network: fast, and its features depend on every decoded pixel
+BATCH = 4              # small, so the 100 references make many shards
+
+
+def start_cluster():
+    return distributed.LocalCluster(processes=True, n_workers=2, threads_per_worker=1, dashboard_address=None)
+
+
+@pytest.fixture(scope="module")
+def cluster():
+    with start_cluster() as running:
+        yield running
+
+
+def options(address=None, **kwargs) -> oddling.RunOptions:
+    # No cache on either side: a cached run leaves cached files out of its batches.
+    return oddling.RunOptions(batch_size=BATCH, use_cache=False, progress=False, dask=address, **kwargs)
+
+
+def arrays(bank: Path) -> dict[str, bytes]:
+    names = sorted(p.name for p in bank.glob("*.npy"))
+    assert "features.npy" in names and any(n.startswith("calibration") for n in names) \
+        and any(n.startswith("health") for n in names), names
+    return {name: (bank / name).read_bytes() for name in names}
+
+
+def fit_and_score(reference: Path, incoming: Path, out: Path, representation: str, opts) -> tuple[dict, bytes]:
+    bank = out / "x.bank"
+    oddling.fit(reference, bank, representation=representation, target_fpr=0.1, options=opts)
+    oddling.score(incoming, bank, options=opts).write_csv(out / "scores.csv")
+    return arrays(bank), (out / "scores.csv").read_bytes()
+
+
+@pytest.fixture(scope="module")
+def incoming(digits_folders, tmp_path_factory) -> Path:
+    """The digits' incoming folder plus files that get no score, so their rows travel too."""
+    folder = tmp_path_factory.mktemp("incoming") / "incoming"
+    shutil.copytree(digits_folders["incoming"], folder)
+    (folder / "notes.txt").write_text("not an image")
+    (folder / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n not really")
+    return folder
+
+
+@pytest.fixture(scope="module")
+def local_pixels(digits_folders, incoming, tmp_path_factory):
+    return fit_and_score(digits_folders["reference"], incoming, tmp_path_factory.mktemp("local"), PIXELS, options())
+
+
+def test_shards_are_whole_batches():
+    for n, workers in [(1, 2), (100, 2), (1000, 3), (10**6, 8)]:
+        size = shard_length(n, BATCH, workers)
+        assert size % BATCH == 0 and size >= BATCH
+
+
+def test_fit_and_score_through_the_cluster_equal_the_local_run(cluster, digits_folders, incoming, local_pixels, tmp_path):
+    remote = fit_and_score(digits_folders["reference"], incoming, tmp_path, PIXELS, options(cluster.scheduler_address))
+    assert remote[0] == local_pixels[0]
+    assert remote[1] == local_pixels[1]
+    text = remote[1].decode()
+    assert "skipped: not an image file type (.txt)" in text and "broken.png" in text
+
+
+def test_a_worker_killed_mid_run_still_gives_the_same_output(digits_folders, incoming, local_pixels, tmp_path):
+    marker = tmp_path / "killed"
+
+    class KillOnce(distributed.WorkerPlugin):
+        """The first worker to start a shard exits at once (like a machine lost), once per test."""
+
+        def transition(self, key, start, finish, **kwargs):
+            if finish == "executing" and str(key).startswith("oddling-shard"):
+                try:
+                    os.close(os.open(marker, os.O_CREAT | os.O_EXCL))
+                except FileExistsError:
+                    return
+                os._exit(1)
+
+    with start_cluster() as fresh, distributed.Client(fresh) as client:
+        client.register_plugin(KillOnce(), name="kill-once")
+        remote = fit_and_score(digits_folders["reference"], incoming, tmp_path, PIXELS,
+                               options(fresh.scheduler_address))
+    assert marker.exists()   # a worker did die
+    assert remote == local_pixels
+
+
+def test_the_default_network_gives_identical_bytes_on_the_cluster(cluster, digits_folders, tmp_path):
+    reference, incoming = tmp_path / "reference", tmp_path / "incoming"
+    reference.mkdir()
+    incoming.mkdir()
+    for path in sorted(digits_folders["reference"].iterdir())[:10]:
+        shutil.copy(path, reference)
+    for path in sorted(digits_folders["incoming"].iterdir())[:6]:
+        shutil.copy(path, incoming)
+    local = fit_and_score(reference, incoming, tmp_path / "local", "efficientnet-lite0", options(runtime="torch"))
+    remote = fit_and_score(reference, incoming, tmp_path / "remote", "efficientnet-lite0",
+                           options(cluster.scheduler_address, runtime="torch"))
+    assert remote == local
+
+
+def test_vectors_made_on_the_cluster_serve_a_later_local_run_from_the_cache(cluster, digits_folders, tmp_path):
+    cached = dict(cache_dir=tmp_path / "cache")
+    remote = oddling.fit(digits_folders["reference"], tmp_path / "remote.bank", representation=PIXELS,
+                         options=oddling.RunOptions(batch_size=BATCH, progress=False, dask=cluster.scheduler_address,
+                                                    **cached))
+    assert list((tmp_path / "cache" / "embeddings").glob("*/chunk-*.npz"))
+    # Everything is cached now: the second cluster run sends nothing and the local run decodes nothing.
+    again = oddling.fit(digits_folders["reference"], tmp_path / "again.bank", representation=PIXELS,
+                        options=oddling.RunOptions(batch_size=BATCH, progress=False, dask=cluster.scheduler_address,
+                                                   **cached))
+    local = oddling.fit(digits_folders["reference"], tmp_path / "local.bank", representation=PIXELS,
+                        options=oddling.RunOptions(batch_size=BATCH, progress=False, **cached))
+    assert arrays(tmp_path / "again.bank") == arrays(tmp_path / "local.bank") == arrays(tmp_path / "remote.bank")
+    assert remote.size == again.size == local.size
+
+
+def run(*args, env=None):
+    return CliRunner().invoke(main, [str(a) for a in args], catch_exceptions=False, env=env)
+
+
+def test_the_cli_commands_take_the_scheduler_from_the_option_or_the_environment(cluster, digits_folders, tmp_path):
+    common = ["--representation", PIXELS, "--target-fpr", 0.1]
+    quick = ["--batch-size", BATCH, "--no-cache", "-q"]
+    address = cluster.scheduler_address
+    for mode, extra, env in [("local", [], None), ("option", ["--dask", address], None),
+                             ("env", [], {"DASK_SCHEDULER_ADDRESS": address})]:
+        out = tmp_path / mode
+        bank = out / "x.bank"
+        assert run("fit", digits_folders["reference"], "--bank", bank, *common, *quick, *extra, env=env).exit_code == 0
+        assert run("score", digits_folders["incoming"], "--bank", bank, "--out", out / "scores.csv", *quick, *extra,
+                   env=env).exit_code == 0
+        assert run("evaluate", digits_folders["test"], "--bank", bank, "--out-dir", out / "eval", *quick, *extra,
+                   env=env).exit_code == 0
+        grown = out / "grown.bank"
+        shutil.copytree(bank, grown)
+        assert run("bank", "add", grown, digits_folders["test"] / "normal", *quick, *extra, env=env).exit_code == 0
+    for mode in ("option", "env"):
+        for name in ("scores.csv", "eval/scores.csv", "eval/metrics.json"):
+            # metrics.json names the bank it used: the same up to the folder name
+            made = (tmp_path / mode / name).read_bytes().replace(f"/{mode}/x.bank".encode(), b"/local/x.bank")
+            assert made == (tmp_path / "local" / name).read_bytes(), (mode, name)
+        for name in ("x.bank", "grown.bank"):
+            assert arrays(tmp_path / mode / name) == arrays(tmp_path / "local" / name), (mode, name)
+
+
+def free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_an_unreachable_scheduler_is_a_clear_error(digits_folders, tmp_path):
+    address = f"tcp://127.0.0.1:{free_port()}"   # nothing listens there
+    with pytest.raises(OddlingError, match="cannot reach the Dask scheduler"):
+        oddling.fit(digits_folders["reference"], tmp_path / "x.bank", representation=PIXELS, options=options(address))
+    result = run("fit", digits_folders["reference"], "--bank", tmp_path / "y.bank", "--representation", PIXELS,
+                 "--dask", address, "-q")
+    assert result.exit_code == 2 and "Error: cannot reach the Dask scheduler" in result.output
+    assert not (tmp_path / "x.bank").exists() and not (tmp_path / "y.bank").exists()
