@@ -104,6 +104,37 @@ def test_a_worker_killed_mid_run_still_gives_the_same_output(digits_folders, inc
     assert remote == local_pixels
 
 
+def test_a_shard_that_keeps_failing_is_an_error_naming_it(digits_folders, tmp_path):
+    import dask
+
+    class KillAlways(distributed.WorkerPlugin):
+        def transition(self, key, start, finish, **kwargs):
+            if finish == "executing" and str(key).startswith("oddling-shard"):
+                os._exit(1)
+
+    # Dask's own limit on workers lost while running one task, set to 0: the first loss is final.
+    with dask.config.set({"distributed.scheduler.allowed-failures": 0}):
+        with start_cluster() as fresh, distributed.Client(fresh) as client:
+            client.register_plugin(KillAlways(), name="kill-always")
+            with pytest.raises(OddlingError, match=r"shard \d+ of \d+ \(files \d+ to \d+\) failed on the Dask cluster"):
+                oddling.fit(digits_folders["reference"], tmp_path / "x.bank", representation=PIXELS,
+                            options=options(fresh.scheduler_address))
+    assert not (tmp_path / "x.bank").exists()
+
+
+def test_a_run_without_dask_never_imports_distributed(digits_folders, tmp_path):
+    import subprocess
+    import sys
+
+    program = ("import sys, oddling\n"
+               f"oddling.fit({str(digits_folders['reference'])!r}, {str(tmp_path / 'x.bank')!r}, "
+               f"representation={PIXELS!r}, target_fpr=0.1, options=oddling.RunOptions(progress=False))\n"
+               "print('distributed' in sys.modules)")
+    done = subprocess.run([sys.executable, "-c", program], capture_output=True, text=True, env=dict(os.environ))
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip().splitlines()[-1] == "False"
+
+
 def test_the_default_network_gives_identical_bytes_on_the_cluster(cluster, digits_folders, tmp_path):
     reference, incoming = tmp_path / "reference", tmp_path / "incoming"
     reference.mkdir()

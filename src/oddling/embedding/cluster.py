@@ -154,30 +154,33 @@ def embed_on_cluster(address: str, root: Path, paths: list[Path], representation
     root = Path(root)
     slots: list = [None] * len(paths)   # per file: (record, vector, health statistics)
     bar = tqdm(total=len(paths), desc=desc, unit="img", file=sys.stderr, disable=not progress, leave=False)
-    client = connect(address)
-    futures = []
+    client = connect(address)   # first: an unreachable scheduler costs no work
+    futures, name = [], None
     try:
         todo = list(range(len(paths)))
         if cache is not None and cache.vectors:
             todo = _answer_here(root, paths, cache, slots, workers, bar)
-        setup = WorkerSetup(representation.spec, None if cache_dir is None else str(cache_dir), runtime,
-                            representation.cache_fingerprint(), representation.runtime, oddling.__version__)
-        # One name per setup: a second run with another representation gets its own plugin.
-        name = f"oddling-representation-{uuid.uuid4().hex}"
-        client.register_plugin(RepresentationPlugin(setup), name=name)
-        n_workers = len(client.scheduler_info().get("workers", {}))
-        size = shard_length(len(todo), batch_size, n_workers)
-        shards = [todo[i:i + size] for i in range(0, len(todo), size)]
-        run = uuid.uuid4().hex[:8]
-        futures = [client.submit(_embed_shard, name, str(root), [str(paths[i]) for i in shard], batch_size, workers,
-                                 key=f"oddling-shard-{run}-{s}", retries=RETRIES, pure=False)
-                   for s, shard in enumerate(shards)]
-        index = {f.key: s for s, f in enumerate(futures)}
-        _gather(client, futures, index, shards, slots, cache, bar)
-        client.unregister_worker_plugin(name)
+        if todo:
+            setup = WorkerSetup(representation.spec, None if cache_dir is None else str(cache_dir), runtime,
+                                representation.cache_fingerprint(), representation.runtime, oddling.__version__)
+            # One name per run, removed at its end: the workers do not keep this run's network.
+            name = f"oddling-representation-{uuid.uuid4().hex}"
+            client.register_plugin(RepresentationPlugin(setup), name=name)
+            n_workers = len(client.scheduler_info().get("workers", {}))
+            size = shard_length(len(todo), batch_size, n_workers)
+            shards = [todo[i:i + size] for i in range(0, len(todo), size)]
+            futures = [client.submit(_embed_shard, name, str(root), [str(paths[i]) for i in shard], batch_size,
+                                     workers, key=f"oddling-shard-{name[-8:]}-{s}", retries=RETRIES, pure=False)
+                       for s, shard in enumerate(shards)]
+            _gather(client, futures, {f.key: s for s, f in enumerate(futures)}, shards, slots, cache, bar)
     finally:
         for future in futures:
             future.cancel()
+        if name is not None:
+            try:
+                client.unregister_worker_plugin(name)
+            except Exception:   # a worker already gone has nothing to unload; never hide the run's own error
+                pass
         client.close()
         bar.close()
         if cache is not None:
