@@ -6,8 +6,9 @@
 Prints figures, never asserts timings. N generated JPEGs (640 x 480, photo-like texture) are
 fitted without the cache (`--no-cache`, so every image is decoded and embedded) locally and
 through a LocalCluster of `--workers` processes with one thread each, on the same machine. Both
-are warmed up first (the network loaded, the export verified, in this process and in every
-worker), and the rounds interleave (local, cluster, local, ...) so each ratio compares runs made
+are warmed up first (exports made and verified, the files in the page cache; a cluster fit
+still loads the network once in every worker, as every `--dask` run does, and that is in its
+time), and the rounds interleave (local, cluster, local, ...) so each ratio compares runs made
 under the same load; the median wall time of each is reported with local / cluster (above 1:
 the cluster is faster). The cluster's start-up is reported apart. The bank arrays of the two
 fits are compared byte for byte.
@@ -73,7 +74,7 @@ def main() -> None:
             local = oddling.RunOptions(runtime=args.runtime, batch_size=args.batch_size, use_cache=False, progress=False)
             remote = oddling.RunOptions(runtime=args.runtime, batch_size=args.batch_size, use_cache=False,
                                         progress=False, dask=cluster.scheduler_address)
-            # Warm-up: networks loaded and exports verified here and on every worker (a shard per worker).
+            # Warm-up: exports made and verified, here and on every worker (a few shards per worker).
             timed_fit(warm, tmp / "warm.bank", local, args.representation)
             warm_many = tmp / "warm_many"
             make_test_jpegs(warm_many, args.batch_size * 4 * args.workers, seed=2, size=(640, 480))

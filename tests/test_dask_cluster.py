@@ -20,6 +20,9 @@ from oddling.cli import main  # noqa: E402
 from oddling.embedding.cluster import shard_length  # noqa: E402
 from oddling.errors import OddlingError  # noqa: E402
 
+# Dask's notice that its default HTTP port is taken (another cluster on a shared machine): not ours.
+pytestmark = pytest.mark.filterwarnings("ignore:Port 8787 is already in use")
+
 PIXELS = "pixels:16"   # no network: fast, and its features depend on every decoded pixel
 BATCH = 4              # small, so the 100 references make many shards
 
