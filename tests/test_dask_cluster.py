@@ -77,6 +77,20 @@ def test_shards_are_whole_batches():
         assert size % BATCH == 0 and size >= BATCH
 
 
+def test_a_worker_unlike_the_client_refuses_to_embed():
+    from oddling.backbones.representation import load_representation
+    from oddling.embedding.cluster import WorkerSetup, _load_checked
+
+    rep = load_representation(PIXELS)
+    setup = WorkerSetup(rep.spec, None, "auto", rep.cache_fingerprint(), rep.runtime, oddling.__version__)
+    assert _load_checked(setup).cache_fingerprint() == rep.cache_fingerprint()
+    with pytest.raises(OddlingError, match="install the same version on every worker"):
+        _load_checked(WorkerSetup(rep.spec, None, "auto", rep.cache_fingerprint(), rep.runtime, "0.0.1"))
+    with pytest.raises(OddlingError, match="differs from the client's"):
+        _load_checked(WorkerSetup(rep.spec, None, "auto", rep.cache_fingerprint() | {"dim": 1}, rep.runtime,
+                                  oddling.__version__))
+
+
 def test_fit_and_score_through_the_cluster_equal_the_local_run(cluster, digits_folders, incoming, local_pixels, tmp_path):
     remote = fit_and_score(digits_folders["reference"], incoming, tmp_path, PIXELS, options(cluster.scheduler_address))
     assert remote[0] == local_pixels[0]
