@@ -10,8 +10,8 @@ import click
 from oddling import api
 from oddling.backbones import DEFAULT_BACKBONE
 from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
-from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
-                                target_fpr_override, user_errors)
+from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, dask_option,
+                                run_options, target_fpr_override, user_errors)
 from oddling.errors import OddlingError
 from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
 from oddling.jobs.common import check_output, plural, refuse_existing
@@ -76,6 +76,7 @@ def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict
               show_default=True, help="False-alarm rate on normal images that sets the flag cutoff.")
 @click.option("--force", is_flag=True, help="Replace an existing bank.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
+@dask_option
 @run_options
 @user_errors
 def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, index, target_fpr,
@@ -121,6 +122,7 @@ def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset
 @click.option("--log", "log_path", is_flag=False, flag_value="", default=None, metavar="[PATH]",
               help="Also append every row to the scored-image log (PATH, or <bank>.log.sqlite beside the bank "
                    "when --log is given without one).")
+@dask_option
 @run_options
 @user_errors
 def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged, report_path, maps_dir, force,
@@ -180,6 +182,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
 @click.option("--report", "report_path", type=click.Path(path_type=Path), default=None,
               help="Also write the review page (self-contained HTML) here.")
 @click.option("--force", is_flag=True, help="Overwrite earlier results in --out-dir.")
+@dask_option
 @run_options
 @user_errors
 def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, target_fpr, as_json, report_path,
@@ -305,7 +308,9 @@ def report(folder, bank_path, log_path, since, until, last, out_html, labelled, 
 @user_errors
 def tune(test_dir, reference_dir, bank_path, labels_csv, normal_labels, representations, budget_minutes, target_fpr,
          seed, as_json, force, **run):
-    """Find the representation and detector that best separate the labelled images in TEST_DIR."""
+    """Find the representation and detector that best separate the labelled images in TEST_DIR.
+
+    Embeds on this machine (there is no --dask here: it times each representation on it)."""
     result = api.tune(test_dir, reference_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                       representations=list(representations) or None, budget_minutes=budget_minutes,
                       target_fpr=target_fpr, seed=seed, force=force, options=_options(**run))

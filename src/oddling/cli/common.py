@@ -95,14 +95,18 @@ BANK_PATH = click.Path(file_okay=False, path_type=Path)
 bank_option = click.option(
     "--bank", "bank_path", required=True, type=BANK_PATH,
     help="Bank folder made by `oddling fit`.")
+dask_option = click.option(
+    "--dask", "dask", metavar="ADDRESS", envvar="DASK_SCHEDULER_ADDRESS", default=None,
+    help="Embed on the workers of this Dask scheduler (e.g. tcp://10.0.0.5:8786) [default: $DASK_SCHEDULER_ADDRESS, "
+         "else this machine]; needs oddling[cluster], see README.")
 target_fpr_override = click.option(
     "--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
     help="Override the bank's false-alarm rate for this run.")
 
 
-def _options(cache_dir, runtime, batch_size, workers, no_cache, quiet) -> RunOptions:
+def _options(cache_dir, runtime, batch_size, workers, no_cache, quiet, dask=None) -> RunOptions:
     return RunOptions(cache_dir=cache_dir, runtime=runtime, batch_size=batch_size, workers=workers,
-                          progress=not quiet, use_cache=not no_cache)
+                          progress=not quiet, use_cache=not no_cache, dask=dask or None)
 
 
 def _num(value, digits: int = 3) -> str:

@@ -7,8 +7,8 @@ from pathlib import Path
 import click
 
 from oddling import api
-from oddling.cli.common import (BANK_PATH, EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
-                                target_fpr_override, user_errors)
+from oddling.cli.common import (BANK_PATH, EXIT_ATTENTION, _num, _options, _print_json, bank_option, dask_option,
+                                run_options, target_fpr_override, user_errors)
 from oddling.errors import OddlingError
 from oddling.data.intake import display_path
 from oddling.jobs.common import check_output, plural
@@ -140,6 +140,7 @@ def bank_info(bank_path, as_json):
 @click.argument("source", type=click.Path(exists=True, path_type=Path))
 @click.option("--root", type=click.Path(exists=True, file_okay=False, path_type=Path), default=None,
               help="Folder the decisions CSV's relative paths start from [default: the CSV's folder].")
+@dask_option
 @run_options
 @user_errors
 def bank_add(bank_path, source, root, **run):

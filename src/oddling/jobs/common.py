@@ -27,6 +27,7 @@ class RunOptions:
     progress: bool = True
     use_cache: bool = True     # reuse and save features in <cache>/embeddings
     precision: str = "fp32"    # "bf16": OpenVINO only, checked against fp32 on the first batch
+    dask: str | None = None    # a Dask scheduler's address: embed on its workers (embedding/cluster.py)
 
     def __post_init__(self):
         # The precision travels inside the runtime text ("openvino:bf16"), so every job that
@@ -137,6 +138,12 @@ def embed_paths(base: Path, paths: list[Path], representation, options: RunOptio
             warnings.warn(f"the embedding cache in {folder} is not usable ({exc.strerror or exc}): running "
                           "without it (nothing is reused or saved); pass --cache-dir with a writable folder, "
                           "or --no-cache to say so", OddlingWarning, stacklevel=3)
+    if options.dask:
+        from oddling.embedding.cluster import embed_on_cluster   # only here: plain runs never import distributed
+
+        return embed_on_cluster(options.dask, base, paths, representation, runtime=options.runtime,
+                                cache_dir=options.cache_dir, batch_size=options.batch_size, workers=options.workers,
+                                progress=options.progress, desc=desc, cache=cache)
     return embed_files(base, paths, representation, batch_size=options.batch_size, workers=options.workers,
                        progress=options.progress, desc=desc, cache=cache)
 
