@@ -381,7 +381,27 @@ def patch_section(folder: Path, runtimes: list[str], rounds: int, say) -> dict:
         say(f"patch detector, runtime {runtime}: fit {median(fit_ms[runtime]):.1f} ms/image "
             f"{rounds_text(fit_ms[runtime])}, score {median(score_ms[runtime]):.1f} ms/image "
             f"{rounds_text(score_ms[runtime])}{same}")
+    features_ms, search_ms = patch_score_parts(last[runtimes[0]][0], incoming, runtimes[0])
+    say(f"patch scoring, runtime {runtimes[0]}, in parts: features (decode, stages, grid) {features_ms:.1f} ms/image, "
+        f"nearest-patch search over the {info['coreset_size']}-patch coreset {search_ms:.1f} ms/image (faiss exact; "
+        f"it grows with the coreset: references x coreset fraction)")
     return out
+
+
+def patch_score_parts(bank, incoming: Path, runtime: str) -> tuple[float, float]:
+    """The two halves of scoring a patch bank, ms/image: the features of the incoming images, and
+    the detector's nearest-patch search over them."""
+    import oddling
+    from oddling.jobs.common import embed_paths, load_bank_representation
+
+    options = oddling.RunOptions(runtime=runtime, use_cache=False, progress=False)
+    paths = sorted(incoming.glob("*.jpg"))
+    start = time.perf_counter()
+    embedded = embed_paths(incoming, paths, load_bank_representation(bank, options), options, "patches")
+    features_ms = (time.perf_counter() - start) * 1000 / len(paths)
+    start = time.perf_counter()
+    bank.detector.anomaly_score(embedded.embeddings)
+    return features_ms, (time.perf_counter() - start) * 1000 / len(paths)
 
 
 def global_differences(banks: dict) -> dict:
