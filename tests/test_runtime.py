@@ -286,3 +286,128 @@ def test_fast_decode_gives_the_manifests_input_within_tolerance(tmp_path, decode
         print(f"\n[decode] {label}: mean abs diff max {mad.max():.4f}, "
               f"embedding cosine min {cosine.min():.5f}")
         assert mad.max() <= 0.01 and cosine.min() >= min_cosine, label
+
+
+# --- intermediate stages (local mode, pooled stages) on the export runtimes --------------------------
+
+PATCH_STAGES = ("stage2", "stage3")
+EXPORT_RUNTIMES = ["onnx", pytest.param("openvino", marks=pytestmark_openvino)]
+
+
+@pytest.fixture(scope="module")
+def local_batch(real_batch):
+    """The samples as local mode sees them: shorter side straight to 224 (no crop margin)."""
+    from oddling.detectors.patch import local_preprocessing
+
+    prep = local_preprocessing(load_backbone("efficientnet-lite0").preprocessing)
+    images = [Image.fromarray(getattr(skimage_data, name)()).convert("RGB") for name in SAMPLES]
+    return np.stack([prep.to_array(im) for im in images])
+
+
+@pytest.mark.parametrize("runtime", EXPORT_RUNTIMES)
+def test_stage_export_gives_pytorchs_stage_outputs_and_records_the_check(tmp_path, local_batch, runtime):
+    torch_net = load_backbone("efficientnet-lite0", tmp_path, runtime="torch")
+    net = load_backbone("efficientnet-lite0", tmp_path, runtime=runtime, stages=PATCH_STAGES)
+    assert net.runtime == runtime and net.onnx.stages == PATCH_STAGES and not net.onnx.verified
+    # Its own file, keyed like the embedding's plus the stage names.
+    assert net.onnx.path == export_path(tmp_path, net.id, net.weights_sha256, 224, PATCH_STAGES)
+    assert "224px-stage2+stage3-opset" in net.onnx.path.name
+    assert net.onnx.path != export_path(tmp_path, net.id, net.weights_sha256, 224)
+    maps, expected = net.intermediates(local_batch, PATCH_STAGES), torch_net.torch_intermediates(local_batch, PATCH_STAGES)
+    assert [m.shape for m in maps] == [(len(SAMPLES), 24, 56, 56), (len(SAMPLES), 40, 28, 28)]
+    for m, e in zip(maps, expected):
+        # fp32: within 1e-5 of the features' scale (values up to ~60 here)
+        assert np.abs(m - e).max() <= 1e-5 * np.abs(e).max()
+    record = json.loads(net.onnx.verified_file.read_text())
+    assert net.onnx.verified and record["n_images"] == len(SAMPLES)
+    assert record["max_abs_diff"] <= 1e-4 and record["min_cosine"] >= 0.9999
+    if runtime == "openvino":
+        assert net.onnx.actual_precision == "f32" and record["precision"] == "f32"
+
+
+@pytest.mark.parametrize("runtime", EXPORT_RUNTIMES)
+def test_disagreeing_stage_export_is_refused_and_deleted(tmp_path, local_batch, runtime):
+    net = load_backbone("efficientnet-lite0", tmp_path, runtime=runtime, stages=PATCH_STAGES)
+    maps = net.intermediates(local_batch[:2], PATCH_STAGES)
+    assert net.onnx.verified_file.is_file()
+    with pytest.raises(OddlingError, match="disagrees with PyTorch.*--runtime torch"):
+        net.onnx.verify(maps, [m[::-1] for m in maps])   # the two images swapped
+    assert not net.onnx.path.exists() and not net.onnx.verified_file.exists()
+    with pytest.raises(OddlingError, match="disagrees"):
+        net.onnx.verify(maps, [1.01 * m for m in maps])   # same directions, 1% larger: the scale counts too
+
+
+def test_a_verified_stage_export_never_builds_the_pytorch_network(tmp_path, local_batch):
+    load_backbone("efficientnet-lite0", tmp_path, runtime="onnx", stages=PATCH_STAGES).intermediates(
+        local_batch[:2], PATCH_STAGES)
+    again = load_backbone("efficientnet-lite0", tmp_path, runtime="onnx", stages=PATCH_STAGES)
+    assert again.onnx.verified
+    again.intermediates(local_batch, PATCH_STAGES)
+    assert again._network is None
+    with pytest.raises(ValueError, match="loaded for its stages"):
+        again.embed(local_batch[:1])   # the export holds stages, not the embedding
+
+
+def test_unknown_stage_is_refused_before_any_export(tmp_path):
+    with pytest.raises(OddlingError, match="has no stage 'stage9'; its stages: stage1"):
+        load_backbone("efficientnet-lite0", tmp_path, runtime="onnx", stages=("stage2", "stage9"))
+    assert not (tmp_path / "onnx").exists()
+
+
+@pytest.fixture(scope="module")
+def patch_folders(tmp_path_factory):
+    """Generated photo-like JPEGs: 24 references (the patch detector needs 20 distinct) and 8 to score."""
+    from oddling.embedding.throughput import make_test_jpegs
+
+    root = tmp_path_factory.mktemp("patchrt")
+    refs = make_test_jpegs(root / "refs", 24, seed=1, size=(320, 240))
+    incoming = make_test_jpegs(root / "incoming", 8, seed=2, size=(320, 240))
+    return refs[0].parent, incoming[0].parent
+
+
+def _fit_and_score(folders, runtime, cache, representation="efficientnet-lite0/patches:stage2+stage3",
+                   detector="patch-knn"):
+    import oddling
+
+    options = oddling.RunOptions(runtime=runtime, use_cache=False, progress=False, cache_dir=cache)
+    bank = oddling.fit(folders[0], None, detector=detector, representation=representation, target_fpr=0.2,
+                       options=options)
+    result = oddling.score(folders[1], bank, options=options)
+    return bank, {r.path: r for r in result.rows}
+
+
+@pytest.mark.filterwarnings("ignore::oddling.api.OddlingWarning")   # few calibration images, expected here
+@pytest.mark.parametrize("runtime", EXPORT_RUNTIMES)
+def test_patch_bank_and_scores_on_the_export_runtime_equal_the_torch_runtime(tmp_path, patch_folders, runtime):
+    """The export runtime changes speed, not answers. Patch scores are distances in feature units
+    (about 30 here, where one float32 step is 1.9e-6), so they are compared relatively: within
+    1e-5 of each value; the bank keeps the same patches (same coreset rows) within 1e-5 of the
+    features' scale."""
+    torch_bank, torch_rows = _fit_and_score(patch_folders, "torch", tmp_path / "cache")
+    fast_bank, fast_rows = _fit_and_score(patch_folders, runtime, tmp_path / "cache")
+    assert fast_bank.representation == torch_bank.representation   # same fingerprint: banks interchange
+    np.testing.assert_allclose(fast_bank.calibration_scores, torch_bank.calibration_scores, rtol=1e-5, atol=0)
+    np.testing.assert_array_equal(fast_bank.detector.sources_, torch_bank.detector.sources_)
+    scale = np.abs(torch_bank.detector.patches_).max()
+    np.testing.assert_allclose(fast_bank.detector.patches_, torch_bank.detector.patches_, rtol=0, atol=1e-5 * scale)
+    assert set(fast_rows) == set(torch_rows)
+    worst = 0.0
+    for path, row in torch_rows.items():
+        assert fast_rows[path].score == pytest.approx(row.score, rel=1e-5, abs=0)
+        assert fast_rows[path].nearest == row.nearest
+        np.testing.assert_allclose(fast_rows[path].anomaly_grid, row.anomaly_grid, rtol=1e-5, atol=0)
+        worst = max(worst, abs(fast_rows[path].score - row.score) / row.score)
+    print(f"\n[runtime] patch scores {runtime} vs torch: largest relative difference {worst:.1e}")
+
+
+@pytest.mark.filterwarnings("ignore::oddling.api.OddlingWarning")
+def test_pooled_stages_on_the_default_runtime_equal_the_torch_runtime(tmp_path, patch_folders):
+    """Pooled stages are unit vectors and their kNN scores cosine distances, so 1e-5 absolute, as
+    for the embedding."""
+    rep = "efficientnet-lite0/stages:stage3+stage5"
+    torch_bank, torch_rows = _fit_and_score(patch_folders, "torch", tmp_path / "cache", rep, "knn")
+    auto_bank, auto_rows = _fit_and_score(patch_folders, "auto", tmp_path / "cache", rep, "knn")
+    np.testing.assert_allclose(auto_bank.features, torch_bank.features, rtol=0, atol=1e-5)
+    np.testing.assert_allclose(auto_bank.calibration_scores, torch_bank.calibration_scores, rtol=0, atol=1e-5)
+    for path, row in torch_rows.items():
+        assert auto_rows[path].score == pytest.approx(row.score, abs=1e-5)

@@ -18,7 +18,7 @@ from oddling.backbones import efficientnet_lite
 from oddling.backbones.efficientnet_lite import EfficientNetLite, EfficientNetLite0, scaled_stages
 from oddling.backbones.manifest import get_spec, parse_manifest
 from oddling.backbones.openclip import ImageTower
-from oddling.detectors.patch import grid_size, patch_features
+from oddling.detectors.patch import grid_size, patch_features, patch_grid
 from oddling.errors import OddlingError
 
 LITE_IDS = ("efficientnet-lite0", "efficientnet-lite1", "efficientnet-lite2")
@@ -242,7 +242,24 @@ def test_patch_features_unchanged_by_stages(embedded_backbone):
     batch = np.random.default_rng(0).standard_normal((2, 3, 224, 224)).astype(np.float32)
     new = patch_features(network, batch)
     assert new.shape == (2, 28 * 28, 24 + 40)
-    np.testing.assert_allclose(new, old_patch_features(network, batch), rtol=0, atol=1e-6)
+    # The 3x3 mean and the resize are NumPy now (patch_grid): the same operations summed in another
+    # order, so equal within float32 rounding (values up to ~60, one float32 step there is 3.8e-6).
+    np.testing.assert_allclose(new, old_patch_features(network, batch), rtol=1e-6, atol=1e-6)
+
+
+@pytest.mark.parametrize("sides", [(56, 28), (28,), (14, 7), (57, 29, 1), (3,)])
+def test_patch_grid_equals_torch_pooling_and_bilinear_resize(sides):
+    """Reference: torch's own avg_pool2d (count_include_pad=False) and bilinear interpolate
+    (align_corners=False), the operations local mode used before patch_grid."""
+    rng = np.random.default_rng(len(sides))
+    maps = [(10 * rng.standard_normal((2, 3, side, side + 1))).astype(np.float32) for side in sides]
+    with torch.inference_mode():
+        expected = []
+        for y in maps:
+            y = F.avg_pool2d(torch.from_numpy(y), 3, stride=1, padding=1, count_include_pad=False)
+            expected.append(F.interpolate(y, size=(28, 28), mode="bilinear", align_corners=False))
+        expected = torch.cat(expected, 1).permute(0, 2, 3, 1).reshape(2, 28 * 28, -1).numpy()
+    np.testing.assert_allclose(patch_grid(maps, 28), expected, rtol=1e-6, atol=1e-6)
 
 
 def test_patch_features_of_open_clip_is_a_clear_error():
@@ -253,3 +270,15 @@ def test_patch_features_of_open_clip_is_a_clear_error():
 
 def test_lite0_class_is_the_unscaled_network():
     assert EfficientNetLite0().rows == scaled_stages(1.0, 1.0) == efficientnet_lite.LITE0_STAGES
+
+
+def test_bilinear_resize_weights_are_torchs_to_the_bit():
+    """Reference: torch's interpolate applied to unit vectors gives its weight matrix."""
+    from oddling.detectors.patch import _bilinear_matrix
+
+    for n_out in (7, 14, 28, 32, 56):
+        for n_in in range(1, 130):
+            eye = torch.eye(n_in).reshape(n_in, 1, 1, n_in)
+            with torch.inference_mode():
+                weights = F.interpolate(eye, size=(1, n_out), mode="bilinear", align_corners=False)
+            np.testing.assert_array_equal(_bilinear_matrix(n_in, n_out), weights.reshape(n_in, n_out).numpy().T)

@@ -1,6 +1,7 @@
-"""Start-up: what a fresh interpreter imports. `import oddling`, `bank info`, drift history and
-scoring a kNN bank of the default embedding whose export is verified must never load torch
-(about 3 s of imports); each check runs in a new process and reads sys.modules."""
+"""Start-up: what a fresh interpreter imports. `import oddling`, `bank info`, drift history,
+scoring a kNN bank of the default embedding whose export is verified, and scoring a patch bank
+whose stage export is verified must never load torch (about 3 s of imports); each check runs in
+a new process and reads sys.modules."""
 from __future__ import annotations
 
 import json
@@ -77,3 +78,18 @@ def test_the_cli_score_command_does_not_load_torch(bank_path, digits_folders, tm
                 f"r = CliRunner().invoke(main, ['score', {str(digits_folders['incoming'])!r}, '--bank', {bank_path!r}, "
                 f"'--out', {str(tmp_path / 's.csv')!r}, '--no-cache', '-q'])\nout['code'] = r.exit_code")
     assert out == {"code": 0, "torch_loaded": False}
+
+
+@pytest.mark.filterwarnings("ignore::oddling.api.OddlingWarning")   # few calibration images for 1%, expected
+def test_scoring_a_patch_bank_with_a_verified_stage_export_does_not_load_torch(digits_folders, tmp_path):
+    import oddling
+
+    bank = tmp_path / "patch.bank"
+    # fitted with the default runtime: the stage export is verified in the cache (fit itself needs torch)
+    oddling.fit(digits_folders["reference"], bank, detector="patch-knn", options=oddling.RunOptions(progress=False))
+    out = fresh(
+        "import oddling\n"
+        "options = oddling.RunOptions(use_cache=False, progress=False)\n"
+        f"result = oddling.score({str(digits_folders['incoming'])!r}, {str(bank)!r}, options=options)\n"
+        "out['scored'] = len(result.scored)\nout['grid'] = len(result.scored[0].anomaly_grid)")
+    assert out["scored"] > 0 and out["grid"] == 28 and not out["torch_loaded"]

@@ -81,12 +81,26 @@ def resolve_runtime(runtime: str, precision: str = "fp32") -> str:
     return runtime
 
 
+def stage_channels(spec: BackboneSpec, stages: Sequence[str]) -> int:
+    """The channels of `stages` together; OddlingError naming the valid ones for an unknown stage."""
+    known = spec.stages
+    if not known:
+        raise OddlingError(f"backbone {spec.id!r} exposes no intermediate stages; use its embedding "
+                           "or a backbone that lists stages (`oddling backbones list`)")
+    unknown = [s for s in stages if s not in known]
+    if unknown:
+        raise OddlingError(f"backbone {spec.id!r} has no stage {unknown[0]!r}; its stages: {', '.join(known)}")
+    return sum(int(known[s]["channels"]) for s in stages)
+
+
 class Backbone:
     """A network plus what identifies it: manifest spec and weight checksum.
 
     With an export session (OpenVINO or ONNX Runtime) the network is exported once into the
     cache, and the first batch also runs in PyTorch to prove both agree; after that the PyTorch
-    network is not even built. `network` builds it on first use (`network_factory`).
+    network is not even built. `network` builds it on first use (`network_factory`). The export
+    gives the embedding (`embed`), or, for a backbone loaded with `stages`, those stages' outputs
+    (`intermediates`).
     """
 
     def __init__(self, spec: BackboneSpec, weights_sha256: str, network=None, onnx_session=None,
@@ -181,8 +195,21 @@ class Backbone:
             outputs = self.network.forward_intermediates(x, stages)
             return [np.ascontiguousarray(y.float().numpy()) for y in outputs]
 
+    def intermediates(self, batch: np.ndarray, stages: Sequence[str]) -> list[np.ndarray]:
+        """Like `torch_intermediates`, through the export when this backbone was loaded for
+        exactly these stages (verified against PyTorch on the first batch), else PyTorch."""
+        if self.onnx is None or self.onnx.stages != tuple(stages):
+            return self.torch_intermediates(batch, stages)
+        maps = self.onnx.outputs(batch)
+        if not self.onnx.verified:
+            self.onnx.verify_first(batch, maps, lambda: self.torch_intermediates(batch, stages))
+        return maps
+
     def embed(self, batch: np.ndarray) -> np.ndarray:
         """(N, 3, H, W) preprocessed float32 -> (N, D) float32 L2-normalised embeddings."""
+        if self.onnx is not None and self.onnx.stages:
+            raise ValueError(f"backbone {self.id!r} was loaded for its stages {'+'.join(self.onnx.stages)}, "
+                             "not its embedding: load it without stages to embed")
         if self.onnx is None:
             feats = self.torch_features(batch)
         else:
@@ -194,19 +221,26 @@ class Backbone:
 
 
 def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None = None,
-                  runtime: str = "torch", precision: str | None = None) -> Backbone:
+                  runtime: str = "torch", precision: str | None = None, stages: Sequence[str] = ()) -> Backbone:
     """Load and verify a backbone.
 
     runtime "auto" uses OpenVINO when installed, else ONNX Runtime, else PyTorch; it may carry
     a precision ("openvino:bf16", see split_runtime), or pass `precision`. With an export
     runtime the PyTorch network is built only if the export is missing or not yet verified.
+    With `stages` (names from the manifest) the export holds those stages' outputs, one output
+    each, for `Backbone.intermediates`, instead of the embedding; stage exports run in fp32.
     """
+    stages = tuple(stages)
     runtime, folded = split_runtime(runtime)
-    chosen = resolve_runtime(runtime, precision or folded)
     precision = precision or folded
+    if stages and precision != "fp32":
+        raise OddlingError(f"intermediate stages run in fp32 only, not {precision}")
+    chosen = resolve_runtime(runtime, precision)
     spec = get_spec(backbone_id)
     if spec.family not in FAMILIES:
         raise OddlingError(f"backbone {spec.id!r} has family {spec.family!r}, which this oddling cannot build")
+    if stages:
+        stage_channels(spec, stages)   # before any export: an unknown name is the user's mistake
     folder = cache_dir(cache)
     try:
         path, sha = resolve_weights(spec, folder)
@@ -219,15 +253,16 @@ def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None 
 
     if chosen == "torch":
         return Backbone(spec, sha, factory())
-    onnx_file = onnx_runtime.export_path(folder, spec.id, sha, spec.preprocessing.crop)
+    onnx_file = onnx_runtime.export_path(folder, spec.id, sha, spec.preprocessing.crop, stages)
     backbone = Backbone(spec, sha, network_factory=factory)
     try:
         if not onnx_file.is_file():
-            onnx_runtime.export(backbone.network, spec.preprocessing.crop, onnx_file)
+            onnx_runtime.export(backbone.network, spec.preprocessing.crop, onnx_file, stages)
         if chosen == "openvino":
-            session = openvino_runtime.OpenVinoSession(onnx_file, precision, cache_dir=folder / "openvino")
+            session = openvino_runtime.OpenVinoSession(onnx_file, precision, cache_dir=folder / "openvino",
+                                                       stages=stages)
         else:
-            session = onnx_runtime.OnnxSession(onnx_file)
+            session = onnx_runtime.OnnxSession(onnx_file, stages=stages)
     except OSError as exc:
         # A cache folder that cannot be written: the export runtimes need the file, PyTorch does not.
         if runtime != "auto":
@@ -247,4 +282,4 @@ def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None 
 
 
 __all__ = ["PRECISIONS", "RUNTIMES", "Backbone", "BackboneSpec", "DEFAULT_BACKBONE", "FAMILIES", "get_spec",
-           "load_backbone", "load_manifest", "resolve_runtime", "split_runtime"]
+           "load_backbone", "load_manifest", "resolve_runtime", "split_runtime", "stage_channels"]

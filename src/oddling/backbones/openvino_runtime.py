@@ -90,7 +90,7 @@ class OpenVinoSession(ExportSession):
     label = "OpenVINO model"
 
     def __init__(self, path: Path, precision: str = "fp32", threads: int | None = None,
-                 cache_dir: Path | None = None):
+                 cache_dir: Path | None = None, stages: tuple[str, ...] = ()):
         import openvino as ov
 
         if precision not in PRECISIONS:
@@ -100,7 +100,7 @@ class OpenVinoSession(ExportSession):
                                "this one has none: use --precision fp32")
         self.precision = precision
         self.runtime = "openvino" if precision == "fp32" else f"openvino-{precision}"
-        super().__init__(path, Path(path).with_suffix(f".openvino-{_HINT[precision]}.verified.json"))
+        super().__init__(path, Path(path).with_suffix(f".openvino-{_HINT[precision]}.verified.json"), stages)
         if self.check is not None and self.check.get("openvino") != ov.__version__:
             self.verified = False   # verified with another OpenVINO release: verify again
         if precision != "fp32":
@@ -117,12 +117,13 @@ class OpenVinoSession(ExportSession):
         hint = self.compiled.get_property("INFERENCE_PRECISION_HINT")
         self.actual_precision = hint.get_type_name() if hasattr(hint, "get_type_name") else str(hint)
         self._request = self.compiled.create_infer_request()
-        self.reference = (OpenVinoSession(path, "fp32", threads, cache_dir) if precision != "fp32" else None)
+        self.reference = (OpenVinoSession(path, "fp32", threads, cache_dir, stages) if precision != "fp32" else None)
 
-    def features(self, batch: np.ndarray) -> np.ndarray:
+    def outputs(self, batch: np.ndarray) -> list[np.ndarray]:
         x = np.ascontiguousarray(batch, dtype=np.float32)
         result = self._request.infer({0: x})
-        return np.array(result[self.compiled.output(0)], dtype=np.float32, copy=True)
+        # Copies: the request reuses its output buffers on the next call.
+        return [np.array(result[output], dtype=np.float32, copy=True) for output in self.compiled.outputs]
 
     def versions(self) -> dict:
         return {"openvino": version(), "precision": self.actual_precision}
@@ -130,15 +131,15 @@ class OpenVinoSession(ExportSession):
     def fallback_hint(self) -> str:
         return "--runtime onnx or --runtime torch"
 
-    def verify_first(self, batch: np.ndarray, features: np.ndarray, torch_features) -> dict:
-        """Verify on the first real batch: fp32 against PyTorch (`torch_features()` gives its
-        features); reduced precision against the verified fp32 model on the same batch."""
+    def verify_first(self, batch: np.ndarray, outputs, torch_outputs) -> dict:
+        """Verify on the first real batch: fp32 against PyTorch (`torch_outputs()` gives its
+        outputs); reduced precision (embeddings only) against the verified fp32 model on the same batch."""
         if self.reference is None:
-            return self.verify(torch_features(), features)
+            return self.verify(torch_outputs(), outputs)
         ref = self.reference.features(batch)
         if not self.reference.verified:
-            self.reference.verify(torch_features(), ref)
-        return self.verify_reduced(ref, features)
+            self.reference.verify(torch_outputs(), ref)
+        return self.verify_reduced(ref, outputs)
 
     def verify_reduced(self, fp32_features: np.ndarray, reduced_features: np.ndarray) -> dict:
         a, b = unit_rows(fp32_features), unit_rows(reduced_features)

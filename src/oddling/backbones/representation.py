@@ -165,19 +165,8 @@ def pixel_features(batch: np.ndarray, colour: str = "grey") -> np.ndarray:
 
 
 def pooled_stage_features(backbone, batch: np.ndarray, stages: tuple[str, ...]) -> np.ndarray:
-    maps = backbone.torch_intermediates(batch, stages)
+    maps = backbone.intermediates(batch, stages)
     return _unit_rows(np.concatenate([_unit_rows(m.mean(axis=(2, 3))) for m in maps], axis=1))
-
-
-def _stage_channels(backbone, stages: tuple[str, ...]) -> int:
-    known = backbone.stages
-    if not known:
-        raise OddlingError(f"backbone {backbone.id!r} exposes no intermediate stages; use its embedding "
-                           "or a backbone that lists stages (`oddling backbones list`)")
-    unknown = [s for s in stages if s not in known]
-    if unknown:
-        raise OddlingError(f"backbone {backbone.id!r} has no stage {unknown[0]!r}; its stages: {', '.join(known)}")
-    return sum(int(known[s]["channels"]) for s in stages)
 
 
 def load_representation(spec: RepresentationSpec | str, cache=None, runtime: str = "auto") -> Representation:
@@ -189,15 +178,15 @@ def load_representation(spec: RepresentationSpec | str, cache=None, runtime: str
         prep = Preprocessing(spec.size, spec.size, "bilinear", (0.0, 0.0, 0.0), (1.0, 1.0, 1.0))
         dim = spec.size * spec.size * (3 if spec.colour == "rgb" else 1)
         return Representation(spec, prep, dim, _embed=lambda batch: pixel_features(batch, spec.colour))
-    from oddling.backbones import load_backbone
+    from oddling.backbones import load_backbone, split_runtime, stage_channels
 
     if spec.kind == "embedding":
         net = load_backbone(spec.backbone, cache, runtime)
         return Representation(spec, net.preprocessing, net.embedding_dim, net, _embed=net.embed)
-    # Intermediate stages come from the PyTorch network (in fp32 whatever precision was asked):
-    # no export to make.
-    net = load_backbone(spec.backbone, cache, "torch")
-    channels = _stage_channels(net, spec.stages)
+    # Intermediate stages run on the same runtime as embeddings, from an export of just those
+    # stages (verified against PyTorch like the embedding's), in fp32 whatever precision was asked.
+    net = load_backbone(spec.backbone, cache, split_runtime(runtime)[0], stages=spec.stages)
+    channels = stage_channels(net.spec, spec.stages)
     if spec.kind == "stages":
         return Representation(spec, net.preprocessing, channels, net,
                               _embed=lambda batch: pooled_stage_features(net, batch, spec.stages))
@@ -206,4 +195,4 @@ def load_representation(spec: RepresentationSpec | str, cache=None, runtime: str
     prep = patch.local_preprocessing(net.preprocessing)
     grid = patch.grid_size(prep.crop)
     return Representation(spec, prep, channels, net, patch_shape=(grid * grid, channels),
-                          _embed=lambda batch: patch.patch_features(net.network, batch, spec.stages))
+                          _embed=lambda batch: patch.patch_grid(net.intermediates(batch, spec.stages), grid))
