@@ -75,6 +75,11 @@ class Detector:
     has_neighbours: ClassVar[bool] = False
     evidence_title: ClassVar[str] = ""
 
+    def faiss_indexes(self) -> dict:
+        """Fitted state kept as faiss indexes ({name: index with `write(path)`}), which the bank
+        saves in faiss's own file format beside the arrays; none by default."""
+        return {}
+
     def clone(self) -> "Detector":
         return type(self)(**self.get_params())
 
