@@ -71,6 +71,9 @@ class Detector:
     # Whether the detector's fitted state is exactly its training features (kNN): the bank then
     # keeps those once, as the reference features, and hands them back on load.
     keeps_training_features: ClassVar[bool] = False
+    # Whether `add(features, groups, reference_groups=...)` appends references and updates the
+    # calibration without a refit (kNN); `bank add` refits the others.
+    adds_incrementally: ClassVar[bool] = False
     # Whether `anomaly_score` can give nearest references as evidence, and how the page titles them.
     has_neighbours: ClassVar[bool] = False
     evidence_title: ClassVar[str] = ""

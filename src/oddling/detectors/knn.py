@@ -95,7 +95,8 @@ class KNNDetector(Detector):
 
     Attributes
     ----------
-    references_ : ndarray (n, d) float32, the L2-normalised reference features.
+    references_ : ndarray (n, d), the L2-normalised reference features: float32, or as a bank stores
+        them when loaded from one (a memory map; float16 for `vector_dtype` float16).
     index_ : the nearest-neighbour index over them (`describe()` gives its parameters and recall).
     calibration_scores_ : ndarray (n_cal,), leave-one-out scores of all references, or of a seeded
         sample of `CALIBRATION_SAMPLE` of them above that many.
@@ -118,6 +119,7 @@ class KNNDetector(Detector):
     title = "k nearest neighbours"
     citation = "Bergman, Cohen & Hoshen 2020 (kNN on pretrained features); Angiulli & Pizzuti 2002"
     keeps_training_features = True
+    adds_incrementally = True
     has_neighbours = True
     evidence_title = "Nearest normal references (cosine distance)"
 
