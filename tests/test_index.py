@@ -67,6 +67,12 @@ def brute_force_rows(bank, queries, k, chunk=500):
                       for i in range(0, len(queries), chunk)])
 
 
+def saved_state(detector):
+    """state() plus the index as banks written before index files kept it: a uint8 array."""
+    state, arrays = detector.state()
+    return state, arrays | {"index": detector.index_.to_array()}
+
+
 def bank_round_trip(state, arrays):
     """As a bank stores them: the dict through JSON, the arrays through an .npz file."""
     buffer = io.BytesIO()
@@ -166,13 +172,73 @@ def bank_of(detector, features):
 def test_approximate_index_is_saved_in_the_bank_and_restored(kind, fitted, bank, fresh, tmp_path):
     det = fitted[kind]
     save_bank(bank_of(det, bank), tmp_path / "b")
-    assert (tmp_path / "b" / "detector.index.npy").is_file()
-    loaded = load_bank(tmp_path / "b").detector
-    assert loaded.index_.kind == kind and loaded.index_.describe() == det.index_.describe()
-    before, after = det.anomaly_score(fresh), loaded.anomaly_score(fresh)
+    saved = tmp_path / "b" / "detector.index.faiss"
+    # written by faiss's own writer: the bytes faiss.write_index gives (serialize_index is the same writer)
+    assert saved.read_bytes() == faiss.serialize_index(det.index_._index).tobytes()
+    assert not list((tmp_path / "b").glob("detector.*.npy"))
+    before = det.anomaly_score(fresh)
+    for memory_map in (True, False):
+        loaded = load_bank(tmp_path / "b", memory_map=memory_map).detector
+        assert loaded.index_.kind == kind and loaded.index_.describe() == det.index_.describe()
+        assert (loaded.index_.mapped_from == saved) is memory_map    # faiss 1.15 maps both kinds
+        after = loaded.anomaly_score(fresh)
+        np.testing.assert_array_equal(after.scores, before.scores)
+        np.testing.assert_array_equal(after.neighbour_rows, before.neighbour_rows)
+        assert "HNSW" in loaded.describe_score() or "IVF" in loaded.describe_score()
+
+
+def write_as_before_index_files(bank, folder):
+    """A format-2 bank as oddling wrote it before index files: the index a uint8 array in
+    detector.index.npy (faiss.serialize_index), bank.json without vector_dtype."""
+    save_bank(bank, folder)
+    index = folder / "detector.index.faiss"
+    np.save(folder / "detector.index.npy", faiss.serialize_index(faiss.read_index(str(index))))
+    index.unlink()
+    meta = json.loads((folder / "bank.json").read_text())
+    del meta["vector_dtype"]
+    (folder / "bank.json").write_text(json.dumps(meta, indent=2))
+
+
+@pytest.mark.parametrize("kind", ["ivf", "hnsw"])
+def test_bank_with_the_index_as_an_array_still_loads(kind, fitted, bank, fresh, tmp_path):
+    det = fitted[kind]
+    write_as_before_index_files(bank_of(det, bank), tmp_path / "old")
+    loaded = load_bank(tmp_path / "old")
+    assert loaded.vector_dtype == "float32" and loaded.detector.index_.mapped_from is None
+    before, after = det.anomaly_score(fresh), loaded.detector.anomaly_score(fresh)
     np.testing.assert_array_equal(after.scores, before.scores)
     np.testing.assert_array_equal(after.neighbour_rows, before.neighbour_rows)
-    assert "HNSW" in loaded.describe_score() or "IVF" in loaded.describe_score()
+    # saved again, it gets an index file
+    save_bank(loaded, tmp_path / "new")
+    assert (tmp_path / "new" / "detector.index.faiss").is_file()
+    np.testing.assert_array_equal(load_bank(tmp_path / "new").detector.anomaly_score(fresh).scores, before.scores)
+
+
+@pytest.mark.parametrize("kind", ["ivf", "hnsw"])
+def test_adding_to_a_mapped_index_reads_it_into_memory_and_leaves_the_file(kind, fitted, bank, fresh, tmp_path):
+    # faiss refuses (IVF) or aborts the process (a mapped flat storage) on adding to a mapped index
+    det = fitted[kind]
+    save_bank(bank_of(det, bank), tmp_path / "b")
+    saved = (tmp_path / "b" / "detector.index.faiss").read_bytes()
+    mapped = load_bank(tmp_path / "b").detector.index_
+    in_memory = load_bank(tmp_path / "b", memory_map=False).detector.index_
+    mapped.add(fresh[:100])
+    in_memory.add(fresh[:100])
+    assert mapped.mapped_from is None and mapped.size == len(bank) + 100
+    for got, expected in zip(mapped.search(fresh, K), in_memory.search(fresh, K)):
+        np.testing.assert_array_equal(got, expected)
+    assert (tmp_path / "b" / "detector.index.faiss").read_bytes() == saved
+
+
+def test_float16_vectors_are_searched_in_blocks_like_numpy(bank, fresh, monkeypatch):
+    import oddling.index.exact as exact_module
+
+    monkeypatch.setattr(exact_module, "REFERENCE_BLOCK", 777)    # many blocks, a short last one
+    half = bank[:5000].astype(np.float16)
+    dist, rows = ExactCosineIndex(half).search(fresh, K)
+    ref_dist, ref_rows = knn_numpy(half.astype(np.float32), fresh, K)
+    np.testing.assert_allclose(dist, ref_dist, atol=1e-6)
+    np.testing.assert_array_equal(rows, ref_rows)
 
 
 def test_exact_bank_stores_no_index_array(bank, tmp_path):
@@ -189,7 +255,7 @@ def test_exact_bank_stores_no_index_array(bank, tmp_path):
     (lambda s, a: s["index"].update(kind="annoy"), "unknown index kind"),
 ])
 def test_damaged_index_state_is_refused(corrupt, message, fitted, bank):
-    state, arrays = bank_round_trip(*fitted["hnsw"].state())
+    state, arrays = bank_round_trip(*saved_state(fitted["hnsw"]))
     arrays["references"] = bank
     corrupt(state, arrays)
     with pytest.raises(OddlingError, match=message):
@@ -383,6 +449,6 @@ def test_fit_command_passes_index_to_the_knn_detector_only():
 @pytest.mark.parametrize("kind", ["ivf", "hnsw"])
 def test_same_bank_and_seed_give_the_same_index(kind, bank):
     # oddling's determinism promise: the saved index is byte-identical across fits
-    first, second = (KNNDetector(k=K, index=kind).fit(bank[:3000]).state() for _ in range(2))
+    first, second = (saved_state(KNNDetector(k=K, index=kind).fit(bank[:3000])) for _ in range(2))
     assert first[0] == second[0]
     np.testing.assert_array_equal(first[1]["index"], second[1]["index"])

@@ -5,6 +5,15 @@ version-1 banks (one kNN or patch mode, from earlier releases) still load. Saved
 temporary sibling folder and renamed into place, so a crash never leaves a half-written bank
 that loads. Arrays are read with allow_pickle=False: a bank is data, never code.
 
+Loading maps rather than reads: `features.npy` (and detector arrays of `MAP_BYTES` or more) are
+memory-mapped read-only (`np.load(mmap_mode="r")`), and checked (shape, finite, unit length)
+in blocks of `CHECK_ROWS` rows read from the file, so a million-reference bank is never copied
+whole into memory by loading it. The features may be stored as float16 (`vector_dtype`, set
+by `oddling fit --vector-dtype float16`; verified then, see `oddling.bank.vectors`) and are
+upcast block by block where used. An approximate index is saved with faiss's own writer as
+`detector.index.faiss` and read memory-mapped where faiss can (`oddling.index.base`); banks of
+format 2 written before that keep it as `detector.index.npy` and load as they did.
+
 Writers of one bank take turns under an OS file lock (`bank_lock`, flock(2) on `.NAME.lock`
 beside the bank). A save that stopped between its two renames is undone by the next reader or
 writer (`recover`): the bank as it was before that save is put back. The version a save
@@ -49,6 +58,10 @@ DETECTOR_PREFIX = "detector."               # detector arrays: detector.<name>.n
 HISTORY_FILE = "drift_history.jsonl"        # appended by `oddling drift`; carried over when a bank is replaced
 V1_EMBEDDINGS_FILE = "embeddings.npy"
 V1_SOURCES_FILE = "patch_sources.npy"
+FAISS_SUFFIX = ".faiss"                     # detector indexes in faiss's file format: detector.<name>.faiss
+VECTOR_DTYPES = ("float32", "float16")      # how features.npy may be stored
+MAP_BYTES = 16 * 2 ** 20                    # detector arrays this large are memory-mapped, not read
+CHECK_ROWS = 16384                          # feature rows checked per block on load
 
 
 @dataclass
@@ -64,9 +77,10 @@ class Bank:
     references : list of dict
         One entry per usable reference image, in feature-row order: path (relative to
         `reference_root`, POSIX), sha256.
-    features : ndarray (n, d) float32 or None
+    features : ndarray (n, d) float32 or float16, or None
         The references' features for vector representations (what drift, audit and bank
-        add/remove need); None for patch grids, which are not kept.
+        add/remove need); None for patch grids, which are not kept. A loaded bank's are a
+        read-only memory map of features.npy; float16 when stored so (`vector_dtype`).
     calibration_scores : ndarray (n_cal,) float64, scores of known-normal images.
     calibration : dict
         method, n, target_fpr, cutoff (flag when score > cutoff), rule.
@@ -87,6 +101,7 @@ class Bank:
     health_fences: dict = field(default_factory=dict)
     skipped: list[dict] = field(default_factory=list)
     formats: dict = field(default_factory=dict)   # optional: the references' file formats (jobs.common.format_summary)
+    vector_check: dict = field(default_factory=dict)
     path: Path | None = None
     format_version: int = FORMAT_VERSION
 
@@ -98,6 +113,11 @@ class Bank:
     def backbone(self) -> dict:
         """The backbone fingerprint, or for a representation without a network its own id."""
         return self.representation.get("backbone_fingerprint") or {"id": self.representation["id"]}
+
+    @property
+    def vector_dtype(self) -> str:
+        """How the features are stored: "float16" or "float32" (also for a bank without features)."""
+        return "float16" if self.features is not None and self.features.dtype == np.float16 else "float32"
 
     @property
     def target_fpr(self) -> float:
@@ -123,7 +143,8 @@ class Bank:
             "references": self.references,
             "skipped": self.skipped,
             "formats": self.formats,
-        }
+            "vector_dtype": self.vector_dtype,
+        } | ({"vector_check": self.vector_check} if self.vector_check else {})
 
 
 _held: dict[str, list] = {}          # lock file -> [threading.RLock, file descriptor or None, depth]
@@ -429,11 +450,23 @@ def _save_array(path: Path, array: np.ndarray) -> None:
 
 def _write_files(bank: Bank, folder: Path) -> None:
     if bank.features is not None:
-        _save_array(folder / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=np.float32))
+        # np.save writes a contiguous array (a memory map included) straight to the file, no copy
+        _save_array(folder / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=bank.vector_dtype))
     _save_array(folder / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
     _save_array(folder / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
     for key, array in bank.detector.state()[1].items():
         _save_array(folder / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
+    for key, index in bank.detector.faiss_indexes().items():
+        path = folder / f"{DETECTOR_PREFIX}{key}{FAISS_SUFFIX}"
+        try:
+            index.write(path)
+        except RuntimeError as exc:     # faiss reports a failed write (a full disk) as RuntimeError
+            raise OSError(errno.EIO, f"faiss could not write {path.name}: {str(exc).splitlines()[0]}") from exc
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
     # Metadata last: a folder without bank.json is never taken for a bank.
     with open(folder / METADATA_FILE, "w", encoding="utf-8") as f:
         json.dump(bank.metadata(), f, indent=2)
@@ -475,9 +508,10 @@ def _type_names(types) -> str:
                        for t in types)
 
 
-def _load_array(folder: Path, name: str) -> np.ndarray:
+def _load_array(folder: Path, name: str, memory_map: bool = False) -> np.ndarray:
+    """The array of a .npy file of the bank: read, or with `memory_map` mapped read-only."""
     try:
-        array = np.load(folder / name, allow_pickle=False)
+        array = np.load(folder / name, allow_pickle=False, mmap_mode="r" if memory_map else None)
     except (OSError, ValueError, EOFError) as exc:
         raise OddlingError(f"bank {folder} is damaged: {name} cannot be read ({exc})") from exc
     if not np.issubdtype(array.dtype, np.number):
@@ -502,7 +536,10 @@ def _check_calibration(f: _Fields, calibration: dict, scores: np.ndarray) -> Non
         f.fail("calibration.cutoff", f"is {cutoff}, but the calibration scores give {expected}")
 
 
-def load_bank(path: str | os.PathLike) -> Bank:
+def load_bank(path: str | os.PathLike, *, memory_map: bool = True) -> Bank:
+    """Read and check the bank at `path`. With `memory_map` (the default) the features, large
+    detector arrays and an approximate index stay memory-mapped from the files (see the module
+    notes); without it they are read into memory."""
     folder = Path(path)
     meta_path = folder / METADATA_FILE
     if not folder.exists() and _leftovers(folder):
@@ -544,9 +581,9 @@ def load_bank(path: str | os.PathLike) -> Bank:
     health_fences = f.get("health_fences", dict, {}, required=False)
     _check_fences(f, health_fences)
     if version == 1:
-        representation, detector, features = _read_v1(f, len(references))
+        representation, detector, features = _read_v1(f, len(references), memory_map)
     else:
-        representation, detector, features = _read_v2(f, len(references))
+        representation, detector, features = _read_v2(f, len(references), memory_map)
     return Bank(
         representation=representation, detector=detector, references=references, features=features,
         calibration_scores=calibration_scores, calibration=calibration,
@@ -554,6 +591,7 @@ def load_bank(path: str | os.PathLike) -> Bank:
         created=f.get("created", str), health_stats=health_stats, health_fences=health_fences,
         skipped=f.get("skipped", list, [], required=False), path=folder, format_version=version,
         formats=f.get("formats", dict, {}, required=False),
+        vector_check=f.get("vector_check", dict, {}, required=False),
     )
 
 
@@ -573,16 +611,40 @@ def _check_fences(f: _Fields, fences: dict) -> None:
                        f"got {value!r}")
 
 
+def _row_blocks(array: np.ndarray, path: Path):
+    """`array` in blocks of CHECK_ROWS rows. A map of `path` is read block by block from the file
+    instead of through the map, so the checked pages do not stay resident in this process."""
+    mapped = isinstance(array, np.memmap) and array.flags.c_contiguous and array.ndim == 2
+    if not mapped:
+        for start in range(0, len(array), CHECK_ROWS):
+            yield array[start:start + CHECK_ROWS]
+        return
+    row_bytes = array.dtype.itemsize * array.shape[1]
+    with open(path, "rb") as fh:
+        for start in range(0, len(array), CHECK_ROWS):
+            count = min(CHECK_ROWS, len(array) - start)
+            fh.seek(array.offset + start * row_bytes)
+            yield np.fromfile(fh, dtype=array.dtype, count=count * array.shape[1]).reshape(count, array.shape[1])
+
+
 def _check_features(f: _Fields, features: np.ndarray, n: int, dim: int, name: str) -> np.ndarray:
-    if features.shape != (n, dim):
+    """Shape, finite, unit length (or zero), checked block by block; float32 and float16 are kept
+    as stored (a map stays a map), other dtypes become float32."""
+    if features.ndim != 2 or features.shape != (n, dim):
         f.fail(name, f"must have shape ({n}, {dim}), got {features.shape}")
-    if not np.isfinite(features).all():
-        f.fail(name, "holds NaN or infinite values")
-    norms = np.linalg.norm(features.astype(np.float64), axis=1)
-    if n and not np.all((np.abs(norms - 1.0) < 1e-3) | (norms < 1e-6)):
-        f.fail(name, "must hold unit-length vectors (found lengths from "
-                     f"{norms.min():.4g} to {norms.max():.4g})")
-    return np.ascontiguousarray(features, dtype=np.float32)
+    if features.dtype.name not in VECTOR_DTYPES or not features.flags.c_contiguous:
+        features = np.ascontiguousarray(features, dtype=np.float32)
+    low, high, bad = math.inf, -math.inf, False
+    for block in _row_blocks(features, f.folder / name):
+        if not np.isfinite(block).all():
+            f.fail(name, "holds NaN or infinite values")
+        norms = np.linalg.norm(block.astype(np.float64), axis=1)
+        if len(norms):
+            low, high = min(low, float(norms.min())), max(high, float(norms.max()))
+            bad = bad or not np.all((np.abs(norms - 1.0) < 1e-3) | (norms < 1e-6))
+    if bad:
+        f.fail(name, f"must hold unit-length vectors (found lengths from {low:.4g} to {high:.4g})")
+    return features
 
 
 def _detector(f: _Fields, name: str, params: dict, state: dict, arrays: dict) -> Detector:
@@ -590,7 +652,23 @@ def _detector(f: _Fields, name: str, params: dict, state: dict, arrays: dict) ->
     return detector.load_state(state, arrays)
 
 
-def _read_v2(f: _Fields, n: int):
+def _detector_arrays(f: _Fields, memory_map: bool) -> dict:
+    """{name: array} of detector.<name>.npy (large ones mapped) and {name: IndexFile} of
+    detector.<name>.faiss (an index, read by the detector)."""
+    arrays = {}
+    for p in sorted(f.folder.glob(f"{DETECTOR_PREFIX}*.npy")):
+        big = memory_map and p.stat().st_size >= MAP_BYTES
+        arrays[p.name[len(DETECTOR_PREFIX):-4]] = _load_array(f.folder, p.name, memory_map=big)
+    indexes = sorted(f.folder.glob(f"{DETECTOR_PREFIX}*{FAISS_SUFFIX}"))
+    if indexes:
+        from oddling.index.base import IndexFile   # faiss only for banks that hold an index
+
+        for p in indexes:
+            arrays[p.name[len(DETECTOR_PREFIX):-len(FAISS_SUFFIX)]] = IndexFile(p, memory_map)
+    return arrays
+
+
+def _read_v2(f: _Fields, n: int, memory_map: bool = True):
     representation = f.get("representation", dict)
     for key, types in (("kind", str), ("id", str), ("dim", int), ("preprocessing", dict)):
         f.get(key, types, source=representation)
@@ -598,22 +676,28 @@ def _read_v2(f: _Fields, n: int):
     name = f.get("name", str, source=info)
     params = f.get("params", dict, source=info)
     state = f.get("state", dict, source=info)
-    arrays = {p.name[len(DETECTOR_PREFIX):-4]: _load_array(f.folder, p.name)
-              for p in sorted(f.folder.glob(f"{DETECTOR_PREFIX}*.npy"))}
+    arrays = _detector_arrays(f, memory_map)
+    dtype = f.get("vector_dtype", str, "float32", required=False)
+    if dtype not in VECTOR_DTYPES:
+        f.fail("vector_dtype", f"must be one of {', '.join(VECTOR_DTYPES)}, got {dtype!r}")
     features = None
     if representation["kind"] != "patches":
-        features = _check_features(f, _load_array(f.folder, FEATURES_FILE), n, representation["dim"], FEATURES_FILE)
+        features = _check_features(f, _load_array(f.folder, FEATURES_FILE, memory_map), n, representation["dim"],
+                                   FEATURES_FILE)
+        if features.dtype.name != dtype and "float16" in (dtype, features.dtype.name):
+            f.fail("vector_dtype", f"is {dtype}, but {FEATURES_FILE} holds {features.dtype.name}")
     stored = set(arrays)
     if features is not None:
         arrays["references"] = features
     detector = _detector(f, name, params, state, arrays)
-    stray = sorted(stored - set(detector.state()[1]))
+    stray = sorted(stored - set(detector.state()[1]) - set(detector.faiss_indexes()))
     if stray:     # a file the detector did not write: not this bank's (or the state is not what it says)
-        f.fail(f"{DETECTOR_PREFIX}{stray[0]}.npy", f"is not part of a {name} detector's state")
+        suffix = FAISS_SUFFIX if not isinstance(arrays[stray[0]], np.ndarray) else ".npy"
+        f.fail(f"{DETECTOR_PREFIX}{stray[0]}{suffix}", f"is not part of a {name} detector's state")
     return representation, detector, features
 
 
-def _read_v1(f: _Fields, n: int):
+def _read_v1(f: _Fields, n: int, memory_map: bool = True):
     """Banks from before detectors were objects: mode global (kNN) or local (patch kNN)."""
     from oddling.backbones.representation import DEFAULT_PATCH_STAGES
 
@@ -622,7 +706,7 @@ def _read_v1(f: _Fields, n: int):
         f.get(key, types, source=backbone)
     mode = f.get("mode", str)
     k = f.get("k", int)
-    embeddings = _load_array(f.folder, V1_EMBEDDINGS_FILE)
+    embeddings = _load_array(f.folder, V1_EMBEDDINGS_FILE, memory_map and f.meta.get("mode") == "global")
     if mode == "global":
         features = _check_features(f, embeddings, n, backbone["embedding_dim"], V1_EMBEDDINGS_FILE)
         representation = {"kind": "embedding", "id": backbone["id"], "backbone": backbone["id"],

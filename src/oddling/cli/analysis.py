@@ -72,6 +72,9 @@ def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict
 @click.option("--index", "index", type=click.Choice(["auto", "exact", "ivf", "hnsw"]), default=None,
               help=f"knn: how neighbours are found; auto = exact below {EXACT_BELOW:,} references, else "
                    f"{AUTO_APPROXIMATE.upper()} tuned to recall@k 0.95 (see README, Large collections) [default: auto].")
+@click.option("--vector-dtype", type=click.Choice(["float32", "float16"]), default="float32", show_default=True,
+              help="knn: store the reference vectors as float16 (half the disk and memory), refused unless it "
+                   "moves scores by at most 1e-3, checked at fit (see README, Large collections).")
 @click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
               show_default=True, help="False-alarm rate on normal images that sets the flag cutoff.")
 @click.option("--force", is_flag=True, help="Replace an existing bank.")
@@ -79,13 +82,13 @@ def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict
 @dask_option
 @run_options
 @user_errors
-def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, index, target_fpr,
-        force, as_json, **run):
+def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, index, vector_dtype,
+        target_fpr, force, as_json, **run):
     """Build a reference bank from REFERENCE_DIR, a folder of known-normal images."""
     refuse_existing(bank_path, force=force)
     bank = api.fit(reference_dir, bank_path, representation=representation, backbone=backbone, detector=detector,
                    params=_detector_params(detector, k, coreset, param_pairs, index), target_fpr=target_fpr, force=force,
-                   options=_options(**run))
+                   vector_dtype=vector_dtype, options=_options(**run))
     info = api.bank_info(bank_path)
     if as_json:
         _print_json(info | {"n_skipped": len(bank.skipped), "skipped": bank.skipped[:100]})

@@ -71,9 +71,17 @@ class Detector:
     # Whether the detector's fitted state is exactly its training features (kNN): the bank then
     # keeps those once, as the reference features, and hands them back on load.
     keeps_training_features: ClassVar[bool] = False
+    # Whether `add(features, groups, reference_groups=...)` appends references and updates the
+    # calibration without a refit (kNN); `bank add` refits the others.
+    adds_incrementally: ClassVar[bool] = False
     # Whether `anomaly_score` can give nearest references as evidence, and how the page titles them.
     has_neighbours: ClassVar[bool] = False
     evidence_title: ClassVar[str] = ""
+
+    def faiss_indexes(self) -> dict:
+        """Fitted state kept as faiss indexes ({name: index with `write(path)`}), which the bank
+        saves in faiss's own file format beside the arrays; none by default."""
+        return {}
 
     def clone(self) -> "Detector":
         return type(self)(**self.get_params())

@@ -19,7 +19,7 @@ import numpy as np
 from oddling.detectors.base import SEED, Detector, Scores, check_features, distinct_groups
 from oddling.errors import OddlingError
 from oddling.index import base as index_base
-from oddling.index.exact import ExactCosineIndex
+from oddling.index.exact import ExactCosineIndex, check_stored
 from oddling.index.selection import check_kind, choose_index, load_index
 
 CALIBRATION_SAMPLE = 20000
@@ -95,7 +95,8 @@ class KNNDetector(Detector):
 
     Attributes
     ----------
-    references_ : ndarray (n, d) float32, the L2-normalised reference features.
+    references_ : ndarray (n, d), the L2-normalised reference features: float32, or as a bank stores
+        them when loaded from one (a memory map; float16 for `vector_dtype` float16).
     index_ : the nearest-neighbour index over them (`describe()` gives its parameters and recall).
     calibration_scores_ : ndarray (n_cal,), leave-one-out scores of all references, or of a seeded
         sample of `CALIBRATION_SAMPLE` of them above that many.
@@ -118,6 +119,7 @@ class KNNDetector(Detector):
     title = "k nearest neighbours"
     citation = "Bergman, Cohen & Hoshen 2020 (kNN on pretrained features); Angiulli & Pizzuti 2002"
     keeps_training_features = True
+    adds_incrementally = True
     has_neighbours = True
     evidence_title = "Nearest normal references (cosine distance)"
 
@@ -220,7 +222,7 @@ class KNNDetector(Detector):
         index = self._search_index()
         index.add(new)
         self.references_ = index.vectors if isinstance(index, ExactCosineIndex) else np.concatenate(
-            [self.references_, new])
+            [self.references_, new.astype(self.references_.dtype, copy=False)])
         self.groups_ = np.concatenate([np.asarray(old_groups), np.asarray(groups)])
         n = n_old + m
         old_rows = getattr(self, "calibration_rows_", None)
@@ -289,24 +291,31 @@ class KNNDetector(Detector):
     # --- state ---------------------------------------------------------------------------------
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:
         # The references are the bank's reference features, kept there once; an exact index is
-        # rebuilt from them on load, an approximate one is saved in faiss's format.
+        # rebuilt from them on load, an approximate one is saved by `faiss_indexes`.
         index = self._search_index()
         state = {"calibration_method": self.calibration_method_, "index": index.describe()}
         arrays = {}
-        if index.kind != "exact":
-            arrays["index"] = index.to_array()
         if getattr(self, "calibration_rows_", None) is not None:
             arrays["calibration_rows"] = np.asarray(self.calibration_rows_, dtype=np.int64)
             arrays["calibration_distances"] = np.asarray(self.calibration_distances_, dtype=np.float32)
         return state, arrays
 
+    def faiss_indexes(self) -> dict:
+        """An approximate index, saved by the bank in faiss's file format (`index.write`)."""
+        index = self._search_index()
+        return {} if index.kind == "exact" else {"index": index}
+
     def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "KNNDetector":
+        """`arrays["references"]`: the bank's features, float32 or float16, kept as given (a
+        memory map stays one); `arrays["index"]`: an approximate index, an
+        `oddling.index.base.IndexFile` (read memory-mapped where faiss can) or, from banks
+        written before index files, the uint8 array of `faiss.serialize_index`."""
         k = self._check_k()
         kind = check_kind(self.index)
         references = arrays.get("references")
         if references is None or references.ndim != 2 or len(references) < k:
             raise OddlingError(f"a kNN detector with k={k} needs at least {k} reference vectors")
-        self.references_ = np.ascontiguousarray(references, dtype=np.float32)
+        self.references_ = check_stored(references)
         self.calibration_method_ = str(state.get("calibration_method", LEAVE_ONE_OUT))
         self.groups_ = None
         description = state.get("index", {"kind": "exact"})

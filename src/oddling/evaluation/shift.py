@@ -113,13 +113,15 @@ def mmd_permutation_test(x, y, n_permutations: int = 500, seed: int = 0) -> dict
     only re-sums its blocks. Each side is subsampled (seeded) to MAX_SAMPLES rows first;
     "n_x" and "n_y" report the sizes actually tested.
     """
+    rng = np.random.default_rng(seed)
+    x, y = np.asarray(x), np.asarray(y)
+    if x.ndim == 2 and y.ndim == 2:    # subsampled before the float64 copy: a bank's mapped features stay mapped
+        x = _subsample(x, MAX_SAMPLES, rng)
+        y = _subsample(y, MAX_SAMPLES, rng)
     x, y = _check_samples(x, y)
     if int(n_permutations) != n_permutations or n_permutations < 1:
         raise ValueError(f"n_permutations must be a positive integer, got: {n_permutations}")
     n_permutations = int(n_permutations)
-    rng = np.random.default_rng(seed)
-    x = _subsample(x, MAX_SAMPLES, rng)
-    y = _subsample(y, MAX_SAMPLES, rng)
     d2 = _squared_distances(np.vstack([x, y]))
     bandwidth = _median_of_pairs(d2)
     k = _gaussian_kernel(d2, bandwidth)

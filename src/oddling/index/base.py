@@ -4,14 +4,18 @@ All indexes work on L2-normalised float32 vectors and answer in cosine distance 
 clipped to [0, 2]); rows are the positions of the vectors in the order they were added, so a
 row is a reference's row in the bank. faiss does the work (Johnson, Douze & Jégou, "Billion-scale
 similarity search with GPUs", IEEE Transactions on Big Data 2019); an index is saved in faiss's
-own format (`faiss.serialize_index`, a uint8 array the bank stores as `detector.index.npy`),
-never pickled.
+own format, never pickled: the bank writes it with `faiss.write_index` to `detector.index.faiss`
+and reads it back memory-mapped where faiss can (`read_index_file`); banks written before that
+hold the same bytes as a uint8 array, `detector.index.npy` (`faiss.serialize_index`), still read.
 
 `search` always runs in chunks of `QUERY_CHUNK` queries, so no call holds more than
 (chunk x k) results of the faiss call at once, whatever the number of queries.
 """
 from __future__ import annotations
 
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
 from typing import ClassVar, Protocol, runtime_checkable
 
 import faiss
@@ -93,6 +97,53 @@ def deserialize(array: np.ndarray):
         raise ValueError(f"the saved index cannot be read by faiss ({str(exc).splitlines()[0]})") from exc
 
 
+@dataclass(frozen=True)
+class IndexFile:
+    """A saved index in faiss's file format, to be read by `read_index_file` (memory-mapped or not)."""
+
+    path: Path
+    memory_map: bool = True
+
+
+def read_index_file(saved: IndexFile) -> tuple[faiss.Index, bool]:
+    """(the index, whether its data stay memory-mapped from the file).
+
+    What faiss 1.15 maps (checked on the installed build, tests/test_index.py): `IO_FLAG_MMAP`
+    maps the inverted lists of an IVF index (they become a read-only `OnDiskInvertedLists`);
+    `IO_FLAG_MMAP_IFC` maps the vector storage of flat-code indexes, the `IndexHNSWFlat` inside
+    our `IndexIDMap` included (the graph itself is read into memory). Anything else, or a map
+    faiss refuses, is read normally. A mapped index must never be added to (faiss aborts the
+    process on a mapped flat storage): `FaissCosineIndex.add` reads it into memory first.
+    """
+    path = str(saved.path)
+    try:
+        if saved.memory_map:
+            with open(path, "rb") as f:
+                ivf = f.read(4) in IVF_FOURCC
+            try:
+                return faiss.read_index(path, faiss.IO_FLAG_MMAP if ivf else faiss.IO_FLAG_MMAP_IFC), True
+            except RuntimeError:
+                pass       # not mappable here: read it normally
+        return faiss.read_index(path), False
+    except (OSError, RuntimeError) as exc:   # faiss reports a damaged or foreign file as RuntimeError
+        raise ValueError(f"the saved index {saved.path.name} cannot be read by faiss "
+                         f"({str(exc).splitlines()[0] if str(exc) else exc})") from exc
+
+
+# The four bytes faiss's writer starts an IndexIVFFlat with (faiss/impl/index_write.cpp: "IwFl";
+# "IvFl" is the older IVF-Flat tag it still reads).
+IVF_FOURCC = (b"IwFl", b"IvFl")
+
+
+def open_saved(saved) -> tuple[faiss.Index, Path | None]:
+    """A saved index (a uint8 array from an older bank, or an `IndexFile`) -> (faiss index, the
+    file it stays mapped from, or None when it is wholly in memory)."""
+    if isinstance(saved, IndexFile):
+        index, mapped = read_index_file(saved)
+        return index, saved.path if mapped else None
+    return deserialize(saved), None
+
+
 def to_cosine(similarities: np.ndarray) -> np.ndarray:
     """Inner products of unit vectors -> cosine distances, clipped to [0, 2] (rounding can push
     1 - cos a hair below zero for identical vectors)."""
@@ -114,6 +165,7 @@ class FaissCosineIndex:
 
     _index: faiss.Index
     choice: dict | None = None     # set by `choose_index`: the measured recall and how it was measured
+    mapped_from: Path | None = None   # the file the index's data are memory-mapped from, if any
 
     @property
     def max_level(self) -> int:
@@ -129,6 +181,7 @@ class FaissCosineIndex:
 
     def add(self, vectors: np.ndarray) -> None:
         vectors = check_vectors(vectors, "vectors", self.dim)
+        self.unmap()
         self.add_rows(vectors, np.arange(self.size, self.size + len(vectors), dtype=np.int64), np.arange(len(vectors)))
 
     def add_rows(self, vectors: np.ndarray, rows: np.ndarray, take: np.ndarray | None = None) -> None:
@@ -140,6 +193,15 @@ class FaissCosineIndex:
 
     def _add(self, vectors: np.ndarray, rows: np.ndarray) -> None:
         self._index.add_with_ids(vectors, rows)
+
+    def unmap(self) -> None:
+        """Read a memory-mapped index wholly into memory (before adding: a mapped one is read-only)."""
+        if self.mapped_from is not None:
+            self._set_index(read_index_file(IndexFile(self.mapped_from, memory_map=False))[0])
+            self.mapped_from = None
+
+    def _set_index(self, index: faiss.Index) -> None:
+        self._index = index
 
     def describe(self) -> dict:
         return {"kind": self.kind, **self.params()} | (self.choice or {})
@@ -177,6 +239,15 @@ class FaissCosineIndex:
 
     def to_array(self) -> np.ndarray:
         return faiss.serialize_index(self._index)
+
+    def write(self, path: Path) -> None:
+        """Save in faiss's file format (`faiss.write_index`). A mapped index is unchanged since it
+        was read (adding unmaps it), so its file is copied: faiss would write a mapped IVF's lists
+        as a reference to that other file."""
+        if self.mapped_from is not None:
+            shutil.copyfile(self.mapped_from, path)
+        else:
+            faiss.write_index(self._index, str(path))
 
 
 def recall_at_k(found_distances: np.ndarray, exact_distances: np.ndarray, tolerance: float = 1e-5) -> np.ndarray:

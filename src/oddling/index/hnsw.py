@@ -18,7 +18,7 @@ import math
 import faiss
 import numpy as np
 
-from oddling.index.base import FaissCosineIndex, deserialize, threads
+from oddling.index.base import FaissCosineIndex, open_saved, threads
 
 M = 32                   # links per vertex (faiss's default; 2M on the bottom layer)
 EF_CONSTRUCTION = 64     # candidate list while building (faiss's default is 40)
@@ -44,6 +44,12 @@ class HNSWCosineIndex(FaissCosineIndex):
         index = cls(vectors.shape[1], m, ef_construction)
         index.add_rows(vectors, rows)
         return index
+
+    def _set_index(self, index: faiss.Index) -> None:
+        ef_search = self.search_param
+        self._index = index
+        self._graph = faiss.downcast_index(index.index)
+        self.set_search(ef_search)
 
     def _add(self, vectors: np.ndarray, rows: np.ndarray) -> None:
         with threads(1):
@@ -73,13 +79,15 @@ class HNSWCosineIndex(FaissCosineIndex):
                 "efSearch": self.search_param}
 
     @classmethod
-    def from_array(cls, array: np.ndarray, description: dict | None = None) -> "HNSWCosineIndex":
-        index = deserialize(array)
+    def from_array(cls, array, description: dict | None = None) -> "HNSWCosineIndex":
+        """From a saved index: a uint8 array (`to_array`) or an `IndexFile` (read memory-mapped)."""
+        index, mapped_from = open_saved(array)
         inner = faiss.downcast_index(index.index) if isinstance(index, faiss.IndexIDMap) else None
         if not isinstance(inner, faiss.IndexHNSWFlat) or inner.metric_type != faiss.METRIC_INNER_PRODUCT:
             raise ValueError(f"the saved index is a {type(index).__name__}, not an inner-product HNSW index")
         description = dict(description or {})
         loaded = cls(index.d, index=index, ef_search=int(description.get("efSearch", inner.hnsw.efSearch)))
+        loaded.mapped_from = mapped_from
         loaded.choice = {key: value for key, value in description.items()
                          if key not in ("kind", *loaded.params())} or None
         return loaded

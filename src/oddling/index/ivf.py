@@ -14,7 +14,7 @@ import math
 import faiss
 import numpy as np
 
-from oddling.index.base import FaissCosineIndex, deserialize, threads_for
+from oddling.index.base import FaissCosineIndex, open_saved, threads_for
 
 NITER = 10                 # k-means iterations (faiss's default is 25; the centroids barely move after 10)
 TRAIN_PER_LIST = 40        # k-means training points per cell (faiss asks for at least 39)
@@ -83,15 +83,22 @@ class IVFCosineIndex(FaissCosineIndex):
         return {"nlist": self.nlist, "nprobe": self.search_param, "kmeans_iterations": NITER,
                 "n_train": self.n_train, "seed": self.seed}
 
+    def _set_index(self, index: faiss.Index) -> None:
+        nprobe = self.search_param
+        self._index = index
+        self.set_search(nprobe)
+
     @classmethod
-    def from_array(cls, array: np.ndarray, description: dict | None = None) -> "IVFCosineIndex":
-        index = deserialize(array)
+    def from_array(cls, array, description: dict | None = None) -> "IVFCosineIndex":
+        """From a saved index: a uint8 array (`to_array`) or an `IndexFile` (read memory-mapped)."""
+        index, mapped_from = open_saved(array)
         if not isinstance(index, faiss.IndexIVFFlat) or index.metric_type != faiss.METRIC_INNER_PRODUCT:
             raise ValueError(f"the saved index is a {type(index).__name__}, not an inner-product IVF-Flat index")
         description = dict(description or {})
         loaded = cls(index.d, index.nlist, nprobe=int(description.get("nprobe", index.nprobe)),
                      seed=int(description.get("seed", 0)), index=index)
         loaded.n_train = int(description.get("n_train", 0))
+        loaded.mapped_from = mapped_from
         loaded.choice = {key: value for key, value in description.items()
                          if key not in ("kind", *loaded.params())} or None
         return loaded

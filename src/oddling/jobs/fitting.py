@@ -10,6 +10,7 @@ import numpy as np
 from oddling import __version__
 from oddling.backbones.representation import RepresentationSpec, load_representation
 from oddling.bank.store import Bank, save_bank
+from oddling.bank.vectors import check_dtype, check_float16
 from oddling.data.health import STATS, fit_fences
 from oddling.detectors import DEFAULT_DETECTOR, make_detector
 from oddling.detectors.conformal import ConformalThreshold
@@ -77,19 +78,39 @@ def references_formats(references: list[dict]) -> dict:
     return format_summary((r.get("format"), r.get("jpeg_quality")) for r in references)
 
 
-def build_bank(embedded, representation, detector, target_fpr: float, reference_dir: Path) -> Bank:
-    """Fit the detector on embedded references and assemble the bank (not saved)."""
+def check_vector_dtype(vector_dtype: str, spec: RepresentationSpec, detector) -> str:
+    """float16 storage is verified with kNN scores (`oddling.bank.vectors`): the knn detector only."""
+    vector_dtype = check_dtype(vector_dtype)
+    if vector_dtype == "float16" and (detector.name != "knn" or spec.feature_kind != "vector"):
+        raise OddlingError(f"--vector-dtype float16 applies to the knn detector on vector features, not "
+                           f"{detector.name} on {spec.id}; its features are kept as float32")
+    return vector_dtype
+
+
+def build_bank(embedded, representation, detector, target_fpr: float, reference_dir: Path,
+               vector_dtype: str = "float32") -> Bank:
+    """Fit the detector on embedded references and assemble the bank (not saved).
+
+    vector_dtype "float16": the float16 rounding is checked first (`check_float16`, OddlingError
+    when it moves scores by more than its tolerance), then the detector is fitted on the
+    float16 vectors, the ones the bank keeps."""
     usable = embedded.ok_records
     if not usable:
         raise OddlingError(no_images_message(reference_dir, embedded.records))
     hashes = np.array([r.sha256 for r in usable])
-    detector.fit(embedded.embeddings, hashes)
+    features, vector_check = embedded.embeddings, {}
+    if vector_dtype == "float16":
+        vector_check = check_float16(features, hashes, detector.k)
+        features = np.asarray(features, dtype=np.float16)
+        detector.fit(features.astype(np.float32), hashes)
+    else:
+        detector.fit(features, hashes)
     references = [reference_entry(r.path, r.sha256, reference_dir / r.path) for r in usable]
     return Bank(
         representation=representation.fingerprint(),
         detector=detector,
         references=references,
-        features=embedded.embeddings if representation.spec.feature_kind == "vector" else None,
+        features=features if representation.spec.feature_kind == "vector" else None,
         calibration_scores=np.asarray(detector.calibration_scores_, dtype=np.float64),
         calibration=calibration_record(detector, target_fpr),
         reference_root=str(reference_dir.resolve()),
@@ -99,6 +120,7 @@ def build_bank(embedded, representation, detector, target_fpr: float, reference_
         health_fences=fences_from_table(embedded.health),
         skipped=[{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK],
         formats=references_formats(references),
+        vector_check=vector_check,
     )
 
 
@@ -113,6 +135,7 @@ def fit(
     k: int | None = None,
     target_fpr: float = 0.01,
     force: bool = False,
+    vector_dtype: str = "float32",
     options: RunOptions | None = None,
 ) -> Bank:
     """Build a reference bank from a folder of normal images (and save it if `bank_path` is given).
@@ -121,7 +144,9 @@ def fit(
     embedding) turns images into features; `detector` (see `oddling.detectors.DETECTORS`; default
     "knn") with its `params` learns what normal looks like and how its scores of normal images are
     spread (the calibration, which sets the cutoff for `target_fpr`). `k` is a shorthand for
-    params={"k": k} of the kNN detector.
+    params={"k": k} of the kNN detector. `vector_dtype` "float16" stores the reference vectors at
+    half the size, after checking that this moves kNN scores by at most 1e-3 (see
+    `oddling.bank.vectors`; the knn detector only).
     """
     options = options or RunOptions()
     reference_dir = folder(reference_dir, "reference folder")
@@ -133,12 +158,13 @@ def fit(
     model = make_detector(detector, params)
     spec = resolve_representation(representation, backbone, detector)
     check_pairing(spec, model)
+    vector_dtype = check_vector_dtype(vector_dtype, spec, model)
     target_fpr = check_rate(target_fpr)
     refuse_existing(bank_path, force=force)
     rep = load_representation(spec, options.cache_dir, options.runtime)
     exclude = (Path(bank_path),) if bank_path is not None else ()
     embedded = embed_folder(reference_dir, rep, options, "embedding references", exclude)
-    bank = build_bank(embedded, rep, model, target_fpr, reference_dir)
+    bank = build_bank(embedded, rep, model, target_fpr, reference_dir, vector_dtype)
     if bank_path is not None:
         save_bank(bank, bank_path, force=force)
     return bank

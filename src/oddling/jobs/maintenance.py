@@ -39,6 +39,36 @@ def refit(bank: Bank, references: list[dict], features: np.ndarray, health: np.n
     return bank
 
 
+def add_references(bank: Bank, added: list[dict], features: np.ndarray, health: np.ndarray) -> dict:
+    """Append references (their entries, features, health rows) to the bank in memory.
+
+    A detector that adds incrementally (kNN, `KNNDetector.add`) grows its index in place and
+    updates its calibration: at most 20,000 references in all, every reference is scored
+    leave-one-out again (the same scores, cutoff and index as a refit on the union, as long as
+    the union stays below the size where `--index auto` would choose an approximate index);
+    above, the calibration sample is updated (kept members' neighbours merged with the new
+    references exactly, new members scored against all; see `KNNDetector.add`). Other detectors
+    are refitted on the union. Returns how the calibration was updated.
+    """
+    if bank.vector_dtype == "float16":       # used as the bank will store them
+        features = np.asarray(features, dtype=np.float16).astype(np.float32)
+    references = bank.references + added
+    if not bank.detector.adds_incrementally:
+        refit(bank, references, np.concatenate([bank.features, features]).astype(np.float32),
+              np.concatenate([bank.health_stats, health]))
+        return {"calibration": "refitted"}
+    detector = bank.detector
+    change = detector.add(features, np.array([r["sha256"] for r in added]),
+                          reference_groups=np.array([r["sha256"] for r in bank.references]))
+    bank.references, bank.features = references, detector.references_   # one copy, the detector's
+    bank.health_stats = np.concatenate([bank.health_stats, health])
+    bank.calibration_scores = np.asarray(detector.calibration_scores_, dtype=np.float64)
+    bank.calibration = calibration_record(detector, bank.target_fpr)
+    bank.health_fences = fences_from_table(bank.health_stats)
+    bank.formats = references_formats(references)
+    return {"calibration": change["calibration"]}
+
+
 def _read_decisions(csv_path: Path, root: Path | None) -> list[Path]:
     """Files marked normal in a decisions CSV (path,decision) exported from the review page."""
     with open(csv_path, newline="", encoding="utf-8-sig") as f:
@@ -93,8 +123,9 @@ def bank_add(
 ) -> dict:
     """Add images to a bank: a folder (every image in it) or a decisions CSV (rows marked normal).
 
-    Only files whose content is not in the bank yet are embedded; the detector is refitted and
-    recalibrated; the bank is replaced atomically (the old one stays in place until the new one
+    Only files whose content is not in the bank yet are embedded; the detector takes them in
+    (`add_references`: incrementally for kNN, else refitted) and is recalibrated; the bank is
+    replaced atomically (the old one stays in place until the new one
     is complete). The bank's lock is held from reading it to saving it, so two `bank add`s (or
     an add and a remove) never lose one side's update: the second waits, then reads the first's.
     """
@@ -126,7 +157,7 @@ def _bank_add(bank_path, source, root, options: RunOptions) -> dict:
         raise OddlingError(no_images_message(source, embedded.records, left_out) + "; nothing was added")
     ref_root = Path(bank.reference_root)
     added, duplicates = [], 0
-    vectors, stats = [bank.features], [bank.health_stats]
+    vectors, stats = [], []
     for rec in embedded.ok_records:
         if rec.sha256 in known:
             duplicates += 1
@@ -136,10 +167,12 @@ def _bank_add(bank_path, source, root, options: RunOptions) -> dict:
         vectors.append(embedded.embeddings[rec.row:rec.row + 1])
         stats.append(embedded.health[rec.row:rec.row + 1])
     skipped = [{"path": r.path, "status": r.status} for r in embedded.records if r.status != OK]
+    change = {"calibration": "unchanged"}
     if added:
-        refit(bank, bank.references + added, np.concatenate(vectors).astype(np.float32), np.concatenate(stats))
+        change = add_references(bank, added, np.concatenate(vectors).astype(np.float32), np.concatenate(stats))
         save_bank(bank, bank_path, force=True)
-    return {"added": len(added), "already_in_bank": duplicates, "skipped": skipped, "n_references": bank.size}
+    return {"added": len(added), "already_in_bank": duplicates, "skipped": skipped, "n_references": bank.size,
+            "calibration": change["calibration"]}
 
 
 AUDIT_KINDS = ("outlier", "duplicate", "near_duplicate", "health")
@@ -245,7 +278,8 @@ def bank_info(bank_path: str | os.PathLike) -> dict:
                                        "calibration", "reference_root", "n_references")} | {
         "format_version": bank.format_version, "backbone": bank.backbone, "n_skipped": len(bank.skipped),
         "path": str(bank.path), "lowest_supported_rate": smallest_supported_rate(n_cal),
-        "supported_rates": supported_rate_text(n_cal)}
+        "supported_rates": supported_rate_text(n_cal), "vector_dtype": bank.vector_dtype,
+        "vector_check": bank.vector_check}
 
 
 def audit(bank: Bank | str | os.PathLike, *, near_duplicate_factor: float | None = None,

@@ -9,6 +9,7 @@ import numpy as np
 
 from oddling.bank.store import Bank, load_bank
 from oddling.data.health import health_findings, health_text
+from oddling.detectors.base import Scores
 from oddling.errors import OddlingError
 from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
                                  load_bank_representation, warn_if_few_calibration, warn_if_other_encoding)
@@ -96,18 +97,48 @@ def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | N
     return upsample_map(row.anomaly_grid, size, bank.representation["preprocessing"]["crop"])
 
 
-def score_features(bank: Bank, features: np.ndarray, target_fpr: float | None = None):
-    """(Scores, p-values, flags, threshold) of feature rows against the bank."""
+SCORE_CHUNK = 4096   # queries per detector call (as oddling.index.base.QUERY_CHUNK): bounds each call's work
+
+
+def score_features(bank: Bank, features: np.ndarray, target_fpr: float | None = None, progress: bool = False):
+    """(Scores, p-values, flags, threshold) of feature rows against the bank.
+
+    Streamed: the detector scores `SCORE_CHUNK` rows at a time, with a progress bar on stderr
+    when there is more than one chunk (and `progress`). Only the results (n x k neighbours) are
+    kept; no call holds more than a chunk's search, never all queries x all references."""
     threshold = bank.threshold(target_fpr)
-    scored = bank.detector.anomaly_score(features)
+    if len(features) <= SCORE_CHUNK:
+        scored = bank.detector.anomaly_score(features)
+    else:
+        import sys
+
+        from tqdm import tqdm
+
+        parts = []
+        with tqdm(total=len(features), desc="scoring against the bank", unit="img", file=sys.stderr,
+                  disable=not progress, leave=False) as bar:
+            for start in range(0, len(features), SCORE_CHUNK):
+                parts.append(bank.detector.anomaly_score(features[start:start + SCORE_CHUNK]))
+                bar.update(len(parts[-1].scores))
+        scored = join_scores(parts)
     return scored, threshold.p_values(scored.scores), threshold.flag(scored.scores), threshold
 
 
-def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None) -> tuple[list[ScoreRow], float]:
+def join_scores(parts: list[Scores]) -> Scores:
+    """The Scores of consecutive chunks as one."""
+    def joined(name):
+        arrays = [getattr(p, name) for p in parts]
+        return None if arrays[0] is None else np.concatenate(arrays)
+
+    return Scores(joined("scores"), joined("neighbour_rows"), joined("neighbour_distances"), joined("maps"))
+
+
+def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None,
+                       progress: bool = False) -> tuple[list[ScoreRow], float]:
     threshold = bank.threshold(target_fpr)
     if not embedded.ok_records:
         return [ScoreRow(path=r.path, status=r.status, sha256=r.sha256) for r in embedded.records], threshold.cutoff
-    scored, p_values, flagged, _ = score_features(bank, embedded.embeddings, target_fpr)
+    scored, p_values, flagged, _ = score_features(bank, embedded.embeddings, target_fpr, progress)
     rows = []
     for rec in embedded.records:
         row = ScoreRow(path=rec.path, status=rec.status, sha256=rec.sha256, note=rec.note)
@@ -164,6 +195,6 @@ def score(
     rep = load_bank_representation(bank, options)
     exclude = (bank.path,) if bank.path else ()
     embedded = embed_folder(incoming_dir, rep, options, "scoring", exclude, allow_empty=allow_empty)
-    rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
+    rows, cutoff = rows_from_embedded(bank, embedded, target_fpr, options.progress)
     warn_about_encoding(bank, incoming_dir, rows)
     return ScoreResult(sort_rows(rows), bank, target_fpr or bank.target_fpr, cutoff, incoming_dir)
