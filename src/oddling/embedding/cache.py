@@ -309,7 +309,8 @@ class EmbeddingCache:
                                      (_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),))
                     conn.execute("COMMIT")
                 except BaseException:
-                    conn.execute("ROLLBACK")
+                    if conn.in_transaction:   # SQLite rolls back by itself on some errors (a full disk)
+                        conn.execute("ROLLBACK")
                     raise
             version = conn.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
             columns = [r[1] for r in conn.execute("PRAGMA table_info(features)")]
@@ -362,7 +363,8 @@ class EmbeddingCache:
                     work(self._conn)
                     self._conn.execute("COMMIT")
                 except BaseException:
-                    self._conn.execute("ROLLBACK")
+                    if self._conn.in_transaction:   # SQLite rolls back by itself on some errors (a full disk)
+                        self._conn.execute("ROLLBACK")
                     raise
                 return True
             except sqlite3.Error as exc:
