@@ -1,5 +1,11 @@
 """The embedding cache: re-runs cost only hashing, interrupted runs resume, shared caches stay correct."""
+import hashlib
 import multiprocessing
+import os
+import sqlite3
+import tracemalloc
+import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -83,15 +89,231 @@ def test_no_cache_leaves_no_files(digits_folders, digits_bank, tmp_path):
     assert not (tmp_path / "c" / "embeddings").exists()
 
 
-def test_damaged_chunk_is_ignored_and_recomputed(digits_folders, digits_bank, tmp_path, reference_csv):
+def _database(cache):
+    [db] = (cache / "embeddings").rglob("features.sqlite")
+    return db
+
+
+def _sql(db, statement, args=()):
+    """Change the database behind oddling's back, with Python's own sqlite3 module."""
+    conn = sqlite3.connect(db, isolation_level=None)
+    try:
+        return conn.execute(statement, args).fetchall()
+    finally:
+        conn.close()
+
+
+def _oddling_warnings(record):
+    return [str(w.message) for w in record if issubclass(w.category, oddling.OddlingWarning)]
+
+
+def test_a_row_tampered_in_the_database_is_skipped_warned_and_recomputed(digits_folders, digits_bank, tmp_path,
+                                                                          monkeypatch, reference_csv):
     cache = tmp_path / "cache"
     oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
-    for chunk in (cache / "embeddings").rglob("chunk-*.npz"):
-        chunk.write_bytes(b"garbage")
-    with pytest.warns(oddling.OddlingWarning, match="damaged chunk") as record:   # said once, not fatal
+    db = _database(cache)
+    [(digest, vector)] = _sql(db, "SELECT sha256, vector FROM features ORDER BY sha256 LIMIT 1")
+    flipped = vector[:100] + bytes([vector[100] ^ 0x40]) + vector[101:]     # one byte of one vector
+    _sql(db, "UPDATE features SET vector = ? WHERE sha256 = ?", (flipped, digest))
+    counter = CountingEmbed(monkeypatch)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
         again = oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
-    assert len([w for w in record if issubclass(w.category, oddling.OddlingWarning)]) == 1
+    [message] = _oddling_warnings(record)                 # said once, not fatal
+    assert "damaged entries" in message and "signature does not match" in message
+    assert counter.images == 1                            # only that image was embedded again
     assert again.to_csv() == reference_csv
+    assert _sql(db, "SELECT vector FROM features WHERE sha256 = ?", (digest,)) == [(vector,)]   # and put back
+
+
+@pytest.mark.parametrize("damage", ["garbage", "truncated", "zero bytes then garbage header"])
+def test_a_damaged_database_file_is_one_warning_and_a_fresh_store(digits_folders, digits_bank, tmp_path, monkeypatch,
+                                                                  reference_csv, damage):
+    cache = tmp_path / "cache"
+    oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
+    db = _database(cache)
+    _sql(db, "PRAGMA wal_checkpoint(TRUNCATE)")          # every row in the main file, then damage it
+    for suffix in ("-wal", "-shm"):
+        Path(f"{db}{suffix}").unlink(missing_ok=True)
+    data = db.read_bytes()
+    if damage == "garbage":
+        db.write_bytes(np.random.default_rng(0).bytes(len(data)))
+    elif damage == "truncated":
+        db.write_bytes(data[:len(data) // 3])             # the header is whole, most rows are gone
+    else:
+        db.write_bytes(b"SQLite format 2\x00" + data[16:])
+    counter = CountingEmbed(monkeypatch)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        again = oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
+    [message] = _oddling_warnings(record)
+    assert "damaged" in message and "fresh one" in message, message
+    assert again.to_csv() == reference_csv
+    assert counter.images > 0
+    n_files = len(list(digits_folders["incoming"].iterdir()))
+    assert _sql(db, "SELECT COUNT(*) FROM features") == [(n_files,)]      # a working store again
+    monkeypatch.undo()
+    counter = CountingEmbed(monkeypatch)
+    oddling.score(digits_folders["incoming"], digits_bank, options=opts(cache))
+    assert counter.images == 0
+
+
+# --- bounded memory and several writers, on the store itself --------------------------------------
+
+DIM = 1280   # efficientnet-lite0's features: 5 KB a row
+
+
+def _unit_vectors(seed: int, n: int, dim: int = DIM) -> np.ndarray:
+    x = np.random.default_rng(seed).standard_normal((n, dim)).astype(np.float32)
+    return x / np.linalg.norm(x, axis=1, keepdims=True)
+
+
+def _health(n: int) -> np.ndarray:
+    from oddling.data.health import STATS
+
+    return np.arange(n * len(STATS), dtype=np.float64).reshape(n, len(STATS))
+
+
+def _digest(i: int) -> str:
+    return hashlib.sha256(str(i).encode()).hexdigest()
+
+
+def _bytes_read() -> int | None:
+    """Bytes this process has asked read(2) for, page cache or not (Linux: /proc/self/io "rchar")."""
+    try:
+        with open("/proc/self/io") as f:
+            return next(int(line.split()[1]) for line in f if line.startswith("rchar:"))
+    except OSError:
+        return None
+
+
+def test_a_lookup_reads_one_row_not_the_whole_cache(tmp_path):
+    from oddling.embedding.cache import EmbeddingCache
+
+    n, block = 20_000, 1000
+    cache = EmbeddingCache.open(tmp_path / "c", {"id": "big"}, "stub", dim=DIM, unit_norm=True)
+    for start in range(0, n, block):                      # 20,000 x 1280 floats = 98 MiB of vectors
+        vectors, health = _unit_vectors(start, block), _health(block)
+        for i in range(block):
+            cache.add(_digest(start + i), vectors[i], health[i])
+    cache.close()
+    assert cache.path.stat().st_size > n * DIM * 4
+    wanted = 12_345
+    expected = _unit_vectors(wanted - wanted % block, block)[wanted % block]   # what was put in
+    EmbeddingCache.open(tmp_path / "c", {"id": "big"}, "stub", dim=DIM).get(_digest(0))   # imports done
+
+    before = _bytes_read()
+    tracemalloc.start()
+    try:
+        looked_up = EmbeddingCache.open(tmp_path / "c", {"id": "big"}, "stub", dim=DIM, unit_norm=True)
+        vector, health = looked_up.get(_digest(wanted))
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    after = _bytes_read()
+    np.testing.assert_array_equal(vector, expected)
+    np.testing.assert_array_equal(health, _health(block)[wanted % block])
+    assert peak < 5 * 2 ** 20, peak                      # the chunk cache allocated all 98 MiB here
+    if before is not None:
+        assert after - before < 5 * 2 ** 20, after - before
+
+
+def _write_digests(cache_root: str, numbers: list[int], flush_every: int) -> None:
+    """One writer process: the vector of each number, written in transactions of `flush_every`."""
+    import oddling.embedding.cache as cache_module
+
+    cache_module.FLUSH_EVERY = flush_every
+    cache = cache_module.EmbeddingCache.open(cache_root, {"id": "shared"}, "stub", dim=64, unit_norm=True)
+    for i in numbers:
+        cache.add(_digest(i), _unit_vectors(i, 1, 64)[0], _health(1)[0] + i)
+        cache.get(_digest(numbers[0]))                   # and reads, while the other one writes
+    cache.close()
+
+
+def test_two_processes_writing_different_and_overlapping_rows(tmp_path):
+    from oddling.embedding.cache import EmbeddingCache
+
+    first, second = list(range(0, 600)), list(range(300, 900))    # 300 content hashes in both
+    ctx = multiprocessing.get_context("spawn")
+    with ctx.Pool(2) as pool:
+        pool.starmap(_write_digests, [(str(tmp_path), first, 7), (str(tmp_path), second, 11)])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")                   # no damaged row, no failed write
+        cache = EmbeddingCache.open(tmp_path, {"id": "shared"}, "stub", dim=64, unit_norm=True)
+        found = cache.get_many([_digest(i) for i in range(900)])
+    assert len(found) == 900 and len(cache) == 900
+    for i in range(900):                                 # every row as it was put in
+        np.testing.assert_array_equal(found[_digest(i)][0], _unit_vectors(i, 1, 64)[0])
+        np.testing.assert_array_equal(found[_digest(i)][1], _health(1)[0] + i)
+
+
+def _fill(cache_root, n=5):
+    from oddling.embedding.cache import EmbeddingCache
+
+    cache = EmbeddingCache.open(cache_root, {"id": "ro"}, "stub", dim=DIM, unit_norm=True)
+    vectors = _unit_vectors(0, n)
+    for i in range(n):
+        cache.add(_digest(i), vectors[i], _health(n)[i])
+    cache.close()
+    return cache.folder, vectors
+
+
+def _read_only_checks(cache_root, vectors, message):
+    from oddling.embedding.cache import EmbeddingCache
+
+    assert "cannot be written" in message and "features already in it are used" in message, message
+    cache = EmbeddingCache.open(cache_root, {"id": "ro"}, "stub", dim=DIM, unit_norm=True)
+    found = cache.get_many([_digest(i) for i in range(len(vectors))])
+    np.testing.assert_array_equal(np.stack([found[_digest(i)][0] for i in range(len(vectors))]), vectors)
+    assert not cache.writable
+    cache.add(_digest(99), _unit_vectors(99, 1)[0], _health(1)[0])      # no error: not saved
+    cache.flush()
+    assert cache.get(_digest(99)) is None
+
+
+def test_a_read_only_cache_is_still_read_and_the_run_goes_on(tmp_path, monkeypatch):
+    """As a folder without write permission behaves for SQLite: opening to write fails with
+    SQLITE_READONLY or SQLITE_CANTOPEN (the -wal file cannot be made); simulated here, since the
+    tests may run as root, whom permissions do not stop. Reading goes through the real read-only
+    open of the real file."""
+    import oddling.embedding.cache as cache_module
+
+    folder, vectors = _fill(tmp_path)
+    real = cache_module._connect
+
+    def connect(path, read_only=False):
+        if not read_only:
+            raise sqlite3.OperationalError("attempt to write a readonly database")
+        return real(path, read_only)
+
+    monkeypatch.setattr(cache_module, "_connect", connect)
+    for suffix in ("-wal", "-shm"):            # a folder that cannot be written has none (nobody made them)
+        assert not Path(f"{folder / 'features.sqlite'}{suffix}").exists()
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        cache_module.EmbeddingCache.open(tmp_path, {"id": "ro"}, "stub", dim=DIM)
+    [message] = _oddling_warnings(record)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        _read_only_checks(tmp_path, vectors, message)
+
+
+@pytest.mark.skipif(not hasattr(os, "geteuid") or os.geteuid() == 0, reason="permissions do not stop root")
+def test_a_folder_without_write_permission_is_still_read(tmp_path):
+    folder, vectors = _fill(tmp_path)
+    folder.chmod(0o555)
+    try:
+        with warnings.catch_warnings(record=True) as record:
+            warnings.simplefilter("always")
+            from oddling.embedding.cache import EmbeddingCache
+
+            EmbeddingCache.open(tmp_path, {"id": "ro"}, "stub", dim=DIM)
+        [message] = _oddling_warnings(record)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            _read_only_checks(tmp_path, vectors, message)
+    finally:
+        folder.chmod(0o755)
 
 
 def test_cache_key_depends_on_runtime_and_weights():

@@ -142,23 +142,39 @@ def _oddling_warnings(record) -> list[str]:
     return [str(w.message) for w in record if issubclass(w.category, OddlingWarning)]
 
 
+def _fill_up(cache) -> None:
+    """The database can grow no more: SQLite's own "database or disk is full" (SQLITE_FULL) from
+    now on, as on a full file system (max_page_count, SQLite docs "PRAGMA max_page_count")."""
+    import sqlite3
+
+    pages = cache._conn.execute("PRAGMA page_count").fetchone()[0]
+    cache._conn.execute(f"PRAGMA max_page_count = {pages}")
+    for i in range(10_000):     # then fill the pages it has (filler rows, not oddling's)
+        try:
+            cache._conn.execute("INSERT INTO features VALUES (?, ?, ?, ?)", (f"filler{i}", b"x" * 64, b"", b""))
+        except sqlite3.OperationalError as exc:
+            assert exc.sqlite_errorcode == sqlite3.SQLITE_FULL
+            return
+
+
 def test_cache_on_a_full_disk_warns_once_and_the_run_goes_on(tmp_path, monkeypatch):
     import oddling.embedding.cache as cache_module
     from oddling.embedding.cache import EmbeddingCache
 
     paths = _images(tmp_path / "in", 7)
     expected = _stub_embed(tmp_path / "in", paths, None)
-    monkeypatch.setattr(cache_module, "FLUSH_EVERY", 2)       # several chunk writes in one run
+    monkeypatch.setattr(cache_module, "FLUSH_EVERY", 2)       # several writes in one run
     cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
-    full_disk(monkeypatch, tmp_path / "cache")
+    _fill_up(cache)
     with pytest.warns(Warning) as record:
         embedded = _stub_embed(tmp_path / "in", paths, cache)
-    monkeypatch.undo()
     [message] = _oddling_warnings(record)
     assert "no space left on device" in message and "goes on without" in message
     assert [r.status for r in embedded.records] == ["ok"] * 7
     np.testing.assert_array_equal(embedded.embeddings, expected.embeddings)
-    assert not [p for p in leftovers(tmp_path / "cache") if "chunk" in p]      # no chunk, no .partial
+    assert not cache.writable and _sql(cache.path, "SELECT COUNT(*) FROM features WHERE sha256 NOT LIKE "
+                                       "'filler%'") == [(0,)]                    # nothing half written
+    assert not [p for p in leftovers(tmp_path / "cache") if "partial" in p]
 
 
 def test_cache_folder_that_cannot_be_made_warns_and_the_run_goes_on(tmp_path):
@@ -173,16 +189,55 @@ def test_cache_folder_that_cannot_be_made_warns_and_the_run_goes_on(tmp_path):
     assert [r.status for r in embedded.records] == ["ok"] * 3
 
 
-# --- 2. damaged cache chunks ----------------------------------------------------------------------
+# --- 2. damaged cache files ----------------------------------------------------------------------
+
+def _write_legacy_chunk(cache, hashes, vectors, health, name=None) -> Path:
+    """A chunk file as earlier releases wrote it (sha256, vectors, health, mac under the cache's key)."""
+    import uuid
+
+    hashes = np.array(hashes, dtype="U64")
+    vectors, health = np.asarray(vectors, np.float32), np.asarray(health, np.float64)
+    chunk = cache.folder / (name or f"chunk-{uuid.uuid4().hex}.npz")
+    with open(chunk, "wb") as f:
+        np.savez(f, sha256=hashes, vectors=vectors, health=health,
+                 mac=np.array(cache._chunk_signature(hashes, vectors, health)))
+    return chunk
+
 
 def _warm_cache(tmp_path, n=5):
+    """A cache folder holding one chunk file of an earlier release with `n` images' features."""
+    from oddling.data.intake import sha256_file
+    from oddling.embedding.cache import EmbeddingCache
+
+    paths = _images(tmp_path / "in", n)
+    reference = _stub_embed(tmp_path / "in", paths, None)
+    cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+    chunk = _write_legacy_chunk(cache, [sha256_file(p) for p in paths], reference.embeddings, reference.health)
+    cache.close()
+    return paths, reference, chunk
+
+
+def _warm_store(tmp_path, n=5):
+    """A cache whose database holds `n` images' features (written through the runner)."""
     from oddling.embedding.cache import EmbeddingCache
 
     paths = _images(tmp_path / "in", n)
     cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
     reference = _stub_embed(tmp_path / "in", paths, cache)
-    [chunk] = cache.folder.glob("chunk-*.npz")
-    return paths, reference, chunk
+    cache.close()
+    assert len(EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")) == n
+    return paths, reference, cache.path
+
+
+def _sql(db: Path, statement: str, args=()):
+    """Change the database behind oddling's back, with Python's own sqlite3 module."""
+    import sqlite3
+
+    conn = sqlite3.connect(db, isolation_level=None)
+    try:
+        return conn.execute(statement, args).fetchall()
+    finally:
+        conn.close()
 
 
 def _rerun(tmp_path, paths, monkeypatch, dim=None):
@@ -212,7 +267,8 @@ def _rewrite_chunk(chunk: Path, sign: bool = False, **arrays):
     content.update(arrays)
     if sign:
         signer = EmbeddingCache(chunk.parent)
-        content["mac"] = np.array(signer._signature(content["sha256"], content["vectors"], content["health"]))
+        signer._key, _ = signer._secret()
+        content["mac"] = np.array(signer._chunk_signature(content["sha256"], content["vectors"], content["health"]))
     with open(chunk, "wb") as f:
         np.savez(f, **content)
 
@@ -253,31 +309,35 @@ def test_a_damaged_chunk_is_skipped_reported_once_and_recomputed(tmp_path, monke
 
 
 
-def test_more_than_64_unreadable_chunks_do_not_crash_compaction(tmp_path, monkeypatch):
-    from oddling.embedding.cache import COMPACT_ABOVE, EmbeddingCache
+def test_seventy_unreadable_chunks_are_one_warning_and_all_removed(tmp_path, monkeypatch):
+    from oddling.embedding.cache import EmbeddingCache
 
     folder = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub").folder
-    for i in range(COMPACT_ABOVE + 6):
+    for i in range(70):
         (folder / f"chunk-{i:032x}.npz").write_bytes(b"" if i % 2 else b"PK\x03\x04 not a zip")
     paths = _images(tmp_path / "in", 3)
     embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch)   # raised "need at least one array"
-    assert len(messages) == 1 and f"and {COMPACT_ABOVE + 5} more" in messages[0]
+    assert len(messages) == 1 and "and 69 more" in messages[0]
     assert n_embedded == 3 and [r.status for r in embedded.records] == ["ok"] * 3
-    assert len(list(folder.glob("chunk-*.npz"))) == 1          # only the new one
+    assert list(folder.glob("chunk-*.npz")) == []
 
 
-def test_compaction_of_more_than_64_good_chunks_keeps_every_vector(tmp_path, monkeypatch):
-    import oddling.embedding.cache as cache_module
-    from oddling.embedding.cache import COMPACT_ABOVE, EmbeddingCache
+def test_many_good_chunks_of_an_earlier_release_are_imported_once_with_every_vector(tmp_path, monkeypatch):
+    from oddling.data.intake import sha256_file
+    from oddling.embedding.cache import EmbeddingCache
 
-    monkeypatch.setattr(cache_module, "FLUSH_EVERY", 1)
-    paths = _images(tmp_path / "in", COMPACT_ABOVE + 2)
-    reference = _stub_embed(tmp_path / "in", paths, EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub"))
-    monkeypatch.undo()
+    paths = _images(tmp_path / "in", 70)
+    reference = _stub_embed(tmp_path / "in", paths, None)
+    cache = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
+    for i, path in enumerate(paths):     # one chunk per image, as FLUSH_EVERY=1 wrote them
+        _write_legacy_chunk(cache, [sha256_file(path)], reference.embeddings[i:i + 1], reference.health[i:i + 1])
+    cache.close()
     embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch)
     assert n_embedded == 0 and messages == []
     np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
-    assert len(list((tmp_path / "cache" / "embeddings").glob("*/chunk-*.npz"))) == 1   # merged into one
+    np.testing.assert_array_equal(embedded.health, reference.health)
+    assert list(cache.folder.glob("chunk-*.npz")) == []            # imported, then removed
+    assert len(EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")) == 70
 
 
 # --- 2. through the command line: one line and exit 2 for a damaged bank, a warning for the cache --
@@ -301,15 +361,19 @@ def pixel_bank(tmp_path):
     return bank
 
 
-def test_a_zero_byte_cache_chunk_is_a_warning_not_aborted(tmp_path, pixel_bank):
-    chunks = list((tmp_path / "cache" / "embeddings").glob("*/chunk-*.npz"))
-    assert chunks
-    for chunk in chunks:
-        chunk.write_bytes(b"")
+@pytest.mark.parametrize("damage", ["zero-byte chunk", "garbage database"])
+def test_a_damaged_cache_file_is_a_warning_not_aborted(tmp_path, pixel_bank, damage):
+    [db] = (tmp_path / "cache" / "embeddings").glob("*/features.sqlite")
+    if damage == "zero-byte chunk":
+        (db.parent / f"chunk-{0:032x}.npz").write_bytes(b"")      # was "Aborted!" (an EOFError), exit 1
+    else:
+        for suffix in ("-wal", "-shm"):
+            Path(f"{db}{suffix}").unlink(missing_ok=True)
+        db.write_bytes(os.urandom(4096))
     result = _cli("score", tmp_path / "refs", "--bank", pixel_bank, "--out", tmp_path / "s.csv",
                   "--cache-dir", tmp_path / "cache", "--quiet")
-    assert result.exit_code == 0, result.output              # was "Aborted!" (an EOFError), exit 1
-    assert result.stderr.count("warning: ") == 1 and "damaged chunk" in result.stderr
+    assert result.exit_code == 0, result.output
+    assert result.stderr.count("warning: ") == 1 and "damaged" in result.stderr
     assert "Aborted" not in result.stderr
 
 
@@ -337,6 +401,66 @@ def test_a_chunk_with_chosen_vectors_cannot_hide_an_image(tmp_path, monkeypatch)
     np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
 
 
+def _rows(db: Path) -> list[tuple]:
+    return _sql(db, "SELECT sha256, vector, health, mac FROM features ORDER BY sha256")
+
+
+def _resign(db: Path, digest: str, vector: bytes, health: bytes) -> bytes:
+    """The row MAC oddling would write: what only someone who can read the key file can make."""
+    from oddling.embedding.cache import EmbeddingCache
+
+    signer = EmbeddingCache(db.parent)
+    signer._key, _ = signer._secret()
+    return signer._mac(digest, vector, health)
+
+
+@pytest.mark.parametrize("damage", ["one byte of a vector", "vector too short", "health row too long",
+                                    "signature emptied", "NaN vector (signed)", "one vector for every image",
+                                    "vectors swapped between images", "hashes moved to other vectors",
+                                    "text where a vector was"])
+def test_a_damaged_or_poisoned_row_is_skipped_reported_once_and_recomputed(tmp_path, monkeypatch, damage):
+    paths, reference, db = _warm_store(tmp_path)
+    rows = _rows(db)
+    digest, vector, health, mac = rows[0]
+    changed = 1
+    if damage == "one byte of a vector":
+        _sql(db, "UPDATE features SET vector = ? WHERE sha256 = ?",
+             (vector[:5] + bytes([vector[5] ^ 0x01]) + vector[6:], digest))
+    elif damage == "vector too short":
+        _sql(db, "UPDATE features SET vector = ? WHERE sha256 = ?", (vector[:8], digest))
+    elif damage == "health row too long":
+        _sql(db, "UPDATE features SET health = ? WHERE sha256 = ?", (health + health, digest))
+    elif damage == "signature emptied":
+        _sql(db, "UPDATE features SET mac = ? WHERE sha256 = ?", (b"", digest))
+    elif damage == "NaN vector (signed)":
+        bad = np.frombuffer(vector, "<f4").copy()
+        bad[0] = np.nan
+        bad = bad.astype("<f4").tobytes()
+        _sql(db, "UPDATE features SET vector = ?, mac = ? WHERE sha256 = ?", (bad, _resign(db, digest, bad, health),
+                                                                             digest))
+    elif damage == "one vector for every image":    # the attack: every image looks like one normal one
+        _sql(db, "UPDATE features SET vector = ?", (vector,))
+        changed = len(rows) - 1
+    elif damage == "vectors swapped between images":
+        for (d, _, _, _), (_, v, _, _) in zip(rows, rows[::-1]):
+            _sql(db, "UPDATE features SET vector = ? WHERE sha256 = ?", (v, d))
+        changed = len(rows) - len(rows) % 2
+    elif damage == "hashes moved to other vectors":
+        _sql(db, "DELETE FROM features")
+        for (d, *_), (_, v, h, m) in zip(rows, rows[1:] + rows[:1]):
+            _sql(db, "INSERT INTO features VALUES (?, ?, ?, ?)", (d, v, h, m))
+        changed = len(rows)
+    elif damage == "text where a vector was":
+        _sql(db, "UPDATE features SET vector = 'abc' WHERE sha256 = ?", (digest,))
+    embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch, dim=4)
+    assert len(messages) == 1 and "damaged entries" in messages[0], messages
+    assert n_embedded == changed                         # nothing came from a damaged row
+    np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
+    _, n_again, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert n_again == 0 and messages == []               # removed, and what was recomputed was cached
+    assert len(_rows(db)) == len(paths)
+
+
 def test_an_unsigned_chunk_from_an_earlier_release_is_recomputed(tmp_path, monkeypatch):
     paths, reference, chunk = _warm_cache(tmp_path)
     with np.load(chunk, allow_pickle=False) as data:
@@ -358,7 +482,27 @@ def test_a_chunk_moved_to_another_cache_key_does_not_verify(tmp_path, monkeypatc
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         moved = EmbeddingCache.open(tmp_path / "cache", {"id": "other"}, "stub")
-    assert moved.vectors == {} and "signature does not match" in _oddling_warnings(record)[0]
+    assert len(moved) == 0 and "signature does not match" in _oddling_warnings(record)[0]
+
+
+def test_a_database_copied_to_another_cache_key_does_not_verify(tmp_path, monkeypatch):
+    import shutil
+
+    from oddling.data.intake import sha256_file
+    from oddling.embedding.cache import DB_FILE, KEY_FILE, EmbeddingCache
+
+    paths, reference, db = _warm_store(tmp_path)
+    other = EmbeddingCache.open(tmp_path / "cache", {"id": "other"}, "stub")
+    other.close()
+    (other.folder / KEY_FILE).write_bytes((db.parent / KEY_FILE).read_bytes())   # even with the same key
+    shutil.copy(db, other.folder / DB_FILE)
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        moved = EmbeddingCache.open(tmp_path / "cache", {"id": "other"}, "stub")
+        assert moved.get_many([sha256_file(p) for p in paths]) == {}
+    [message] = _oddling_warnings(record)
+    assert "signature does not match" in message
+    assert len(moved) == 0                                         # and the rows were removed
 
 
 def test_a_signed_chunk_must_still_hold_finite_and_if_asked_unit_vectors(tmp_path, monkeypatch):
@@ -368,17 +512,22 @@ def test_a_signed_chunk_must_still_hold_finite_and_if_asked_unit_vectors(tmp_pat
     with np.load(chunk, allow_pickle=False) as data:
         vectors = data["vectors"]
     _rewrite_chunk(chunk, sign=True, vectors=vectors * 3)        # signed, but not unit length
+    with np.load(chunk, allow_pickle=False) as data:
+        hashes = [str(h) for h in data["sha256"]]
     loose = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub")
-    assert len(loose.vectors) == len(paths)                       # unit_norm=False: taken as they are
+    found = loose.get_many(hashes)                                # unit_norm=False: taken as they are
+    np.testing.assert_array_equal(np.stack([found[h][0] for h in hashes]), vectors * 3)
+    loose.close()
     with warnings.catch_warnings(record=True) as record:
         warnings.simplefilter("always")
         strict = EmbeddingCache.open(tmp_path / "cache", {"id": "stub"}, "stub", unit_norm=True)
-    assert strict.vectors == {} and "not of unit length" in _oddling_warnings(record)[0]
+        assert strict.get_many(hashes) == {}
+    assert "not of unit length" in _oddling_warnings(record)[0]
     strict.add("f" * 64, np.array([3.0, 0, 0, 0], np.float32), np.zeros(len(reference.health[0])))
     strict.add("e" * 64, np.array([np.nan, 0, 0, 0], np.float32), np.zeros(len(reference.health[0])))
-    assert strict._pending_hashes == []                           # neither is saved
+    assert strict._pending == {}                                  # neither is saved
     strict.add("d" * 64, np.array([0.6, 0.8, 0, 0], np.float32), np.zeros(len(reference.health[0])))
-    assert strict._pending_hashes == ["d" * 64]
+    assert list(strict._pending) == ["d" * 64]
 
 
 @pytest.mark.skipif(not hasattr(os, "geteuid"), reason="POSIX owners and modes")
@@ -393,16 +542,18 @@ def test_the_key_is_made_private_on_first_use_even_with_an_open_umask(tmp_path):
     info = (folder / KEY_FILE).stat()
     assert oct(info.st_mode & 0o777) == oct(0o600) and info.st_uid == os.geteuid()
     assert len((folder / KEY_FILE).read_bytes()) == KEY_BYTES
-    assert [p.name for p in folder.iterdir()] == [KEY_FILE]        # no temporary key file left
+    # no temporary key file left; beside the key only the database (and SQLite's WAL files)
+    assert {p.name for p in folder.iterdir()} <= {KEY_FILE, "features.sqlite", "features.sqlite-wal",
+                                                  "features.sqlite-shm"}
 
 
 @pytest.mark.skipif(not hasattr(os, "geteuid"), reason="POSIX owners and modes")
 @pytest.mark.parametrize("damage", ["readable by others", "wrong length", "symbolic link"])
-def test_a_key_that_is_not_private_is_replaced_and_its_chunks_recomputed(tmp_path, monkeypatch, damage):
+def test_a_key_that_is_not_private_is_replaced_and_its_rows_recomputed(tmp_path, monkeypatch, damage):
     from oddling.embedding.cache import KEY_FILE
 
-    paths, reference, chunk = _warm_cache(tmp_path)
-    key = chunk.parent / KEY_FILE
+    paths, reference, db = _warm_store(tmp_path)
+    key = db.parent / KEY_FILE
     if damage == "readable by others":
         key.chmod(0o644)
     elif damage == "wrong length":
@@ -764,8 +915,8 @@ def test_sigterm_stops_fit_like_ctrl_c_and_the_cache_keeps_the_finished_work(tmp
     assert not (tmp_path / "b.bank").exists()
     [folder] = (tmp_path / "cache" / "embeddings").iterdir()
     cache = EmbeddingCache(folder)
-    cache._load()
-    assert len(cache.vectors) >= 16                      # flushed on the way out
+    cache._start()
+    assert len(cache) >= 16                              # flushed on the way out
     assert not [p for p in folder.iterdir() if "partial" in p.name]
 
 

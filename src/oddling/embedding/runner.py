@@ -70,7 +70,8 @@ def frames_note_of(path: Path) -> str:
 
 
 def _prepare(path: Path, preprocessing: Preprocessing, cache: EmbeddingCache | None = None):
-    """(sha256, network input, health statistics, status) for one file; never raises for a bad file."""
+    """(sha256, network input, health statistics, status) for one file (the cached vector in place of
+    the network input when status is _CACHED); never raises for a bad file."""
     try:
         # Before opening (a FIFO would block) and before the cache: a cached vector of the same
         # bytes must not turn "noext" or "a.txt" into "ok". Links, folders, devices get their status.
@@ -80,8 +81,9 @@ def _prepare(path: Path, preprocessing: Preprocessing, cache: EmbeddingCache | N
         return None, None, None, exc.status
     except OSError as exc:
         return None, None, None, f"unreadable: {exc.strerror or exc}"
-    if cache is not None and cache.get(digest) is not None:
-        return digest, None, None, _CACHED
+    hit = cache.get(digest) if cache is not None else None
+    if hit is not None:   # (vector, health statistics) in place of (network input, health statistics)
+        return digest, hit[0], hit[1], _CACHED
     try:
         # Large enough for the network and for the health image (shorter side HEALTH_SIDE).
         image = load_rgb(path, min_side=max(preprocessing.resize_shorter, DECODE_SIDE))
@@ -135,9 +137,8 @@ def embed_files(
                 for path, (digest, array, stats, status) in zip(batch, results):
                     rel = path.relative_to(root).as_posix()
                     if status == _CACHED:
-                        vector, stats = cache.get(digest)
                         records.append(FileRecord(rel, digest, OK, len(vectors), frames_note_of(path)))
-                        vectors.append(vector)
+                        vectors.append(array)   # the cached vector
                         health.append(stats)
                     elif array is None:
                         records.append(FileRecord(rel, digest, status))

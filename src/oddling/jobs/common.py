@@ -3,7 +3,6 @@ from __future__ import annotations
 
 import math
 import os
-import tempfile
 import warnings
 from dataclasses import dataclass
 from pathlib import Path
@@ -131,8 +130,7 @@ def embed_paths(base: Path, paths: list[Path], representation, options: RunOptio
                                         dim=representation.embedding_dim,
                                         # network features are unit length; a pixel thumbnail of a flat image is 0
                                         unit_norm=representation.spec.kind in ("embedding", "stages"))
-            with tempfile.TemporaryFile(dir=cache.folder):   # it saves as the run goes: it must be writable
-                pass
+            # (a folder it cannot write is still read; the cache says so once itself)
         except OSError as exc:
             cache = None
             warnings.warn(f"the embedding cache in {folder} is not usable ({exc.strerror or exc}): running "
