@@ -171,7 +171,7 @@ def test_vectors_made_on_the_cluster_serve_a_later_local_run_from_the_cache(clus
     remote = oddling.fit(digits_folders["reference"], tmp_path / "remote.bank", representation=PIXELS,
                          options=oddling.RunOptions(batch_size=BATCH, progress=False, dask=cluster.scheduler_address,
                                                     **cached))
-    assert list((tmp_path / "cache" / "embeddings").glob("*/chunk-*.npz"))
+    assert list((tmp_path / "cache" / "embeddings").glob("*/features.sqlite"))
     # Everything is cached now: the second cluster run sends nothing and the local run decodes nothing.
     again = oddling.fit(digits_folders["reference"], tmp_path / "again.bank", representation=PIXELS,
                         options=oddling.RunOptions(batch_size=BATCH, progress=False, dask=cluster.scheduler_address,

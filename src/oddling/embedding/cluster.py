@@ -158,7 +158,7 @@ def embed_on_cluster(address: str, root: Path, paths: list[Path], representation
     futures, name = [], None
     try:
         todo = list(range(len(paths)))
-        if cache is not None and cache.vectors:
+        if cache is not None and len(cache):
             todo = _answer_here(root, paths, cache, slots, workers, bar)
         if todo:
             setup = WorkerSetup(representation.spec, None if cache_dir is None else str(cache_dir), runtime,
