@@ -30,7 +30,7 @@ from oddling.index.ivf import IVFCosineIndex
 
 KINDS = ("auto", "exact", "ivf", "hnsw")
 # Below this many references `auto` searches exactly. Measured (benchmarks/bench_index.py
-# --crossover, clustered 1280-d vectors, 2 cores; figures in DEVELOPERS.md): below it, exact
+# --crossover, clustered 1280-d vectors, 2 cores): below it, exact
 # search of 10,000 queries plus the leave-one-out calibration cost less than building and tuning
 # an approximate index, and exact search is fast enough for a service.
 EXACT_BELOW = 100_000
