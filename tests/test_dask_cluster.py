@@ -160,7 +160,16 @@ def test_the_default_network_gives_identical_bytes_on_the_cluster(cluster, digit
         shutil.copy(path, reference)
     for path in sorted(digits_folders["incoming"].iterdir())[:6]:
         shutil.copy(path, incoming)
-    local = fit_and_score(reference, incoming, tmp_path / "local", "efficientnet-lite0", options(runtime="torch"))
+    import torch
+
+    # PyTorch's results may depend on its thread count, which earlier tests in this process can
+    # change: the local run uses what each worker has (one thread).
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        local = fit_and_score(reference, incoming, tmp_path / "local", "efficientnet-lite0", options(runtime="torch"))
+    finally:
+        torch.set_num_threads(threads)
     remote = fit_and_score(reference, incoming, tmp_path / "remote", "efficientnet-lite0",
                            options(cluster.scheduler_address, runtime="torch"))
     assert remote == local
