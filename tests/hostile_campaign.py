@@ -17,6 +17,7 @@ import os
 import re
 import shutil
 import signal
+import sqlite3
 import subprocess
 import sys
 import tempfile
@@ -30,6 +31,9 @@ from PIL import Image
 ROOT = Path(__file__).resolve().parents[1]
 ENV = dict(os.environ, PYTHONPATH=os.pathsep.join([str(ROOT / "src")] + [p for p in [os.environ.get("PYTHONPATH")] if p]))
 PY = sys.executable
+# Permissions do not stop root: run as root, a command drops the capabilities that override them (Linux).
+HONOUR_PERMISSIONS = ["setpriv", "--bounding-set=-dac_override,-dac_read_search,-fowner", "--"] \
+    if os.geteuid() == 0 else []
 LEFTOVER = re.compile(r"\.(writing|old|discard)-\d+|\.partial")
 
 
@@ -53,9 +57,33 @@ class Case:
 CASES: list[Case] = []
 
 
-def run(args, case: Case | None = None, **kwargs) -> subprocess.CompletedProcess:
-    done = subprocess.run([PY, "-m", "oddling.cli", *map(str, args)], capture_output=True, text=True, env=ENV,
-                          **kwargs)
+# The CLI, counting the images whose features came from the embedding cache (the last stderr line).
+COUNT_HITS = """
+import atexit, sys
+import oddling.embedding.cache as cache
+hits = []
+real_get = cache.EmbeddingCache.get
+def get(self, digest):
+    found = real_get(self, digest)
+    hits.append(found is not None)
+    return found
+cache.EmbeddingCache.get = get
+atexit.register(lambda: print(f"cache hits: {sum(hits)}", file=sys.stderr))
+from oddling.cli import main
+sys.argv = ["oddling"] + sys.argv[1:]
+main()
+"""
+
+
+def run(args, case: Case | None = None, prefix=(), launch=("-m", "oddling.cli"),
+        **kwargs) -> subprocess.CompletedProcess:
+    command = [*prefix, PY, *launch, *map(str, args)]
+    try:
+        done = subprocess.run(command, capture_output=True, text=True, env=ENV, **kwargs)
+    except subprocess.TimeoutExpired as exc:   # killed: a hang fails its case instead of stopping the campaign
+        if case is not None:
+            case.fail(f"no answer after {exc.timeout:.0f} s (blocked)")
+        return subprocess.CompletedProcess(command, -signal.SIGKILL, "", "timed out")
     if case is not None and "Traceback" in done.stderr:
         case.fail("traceback: " + done.stderr.strip().splitlines()[-1][:160], "traceback")
     return done
@@ -133,11 +161,14 @@ class World:
 
 
 def expect_score(world: World, case: Case, bank: Path, cache: Path, expected_csv: bytes | None, *, warn: bool,
-                 incoming: Path | None = None) -> None:
+                 incoming: Path | None = None, says: str | None = None, reused: bool | None = None, prefix=()) -> None:
+    """Score and compare with a clean run. Damage to the cache is reported in at most one warning
+    line (exactly one with `warn`, holding `says`); `reused`: whether features must (True) or must
+    not (False) come from the cache."""
     out = world.root / "out" / f"{case.group}-{len(CASES)}.csv"
     out.parent.mkdir(exist_ok=True)
     done = run(["score", incoming or world.incoming, "--bank", bank, "--out", out, "--quiet", "--cache-dir", cache],
-               case)
+               case, prefix, launch=("-c", COUNT_HITS) if reused is not None else ("-m", "oddling.cli"), timeout=600)
     if done.returncode != 0:
         case.fail(f"score exit {done.returncode}: {done.stderr.strip()[-200:]}")
         return
@@ -148,8 +179,20 @@ def expect_score(world: World, case: Case, bank: Path, cache: Path, expected_csv
         case.fail(f"{rows} rows for {len(names)} files", "silent")
     if expected_csv is not None and data != expected_csv:
         case.fail("scores differ from a clean run", "lost")
-    if warn and "warning:" not in done.stderr:
+    cache_warnings = [line for line in done.stderr.splitlines()
+                      if line.startswith("warning:") and "embedding cache" in line]
+    if warn and not cache_warnings:
         case.fail("damage passed without a warning", "silent")
+    elif len(cache_warnings) > 1:
+        case.fail(f"{len(cache_warnings)} warning lines for one damage: {cache_warnings}")
+    elif says and cache_warnings and says not in cache_warnings[0]:
+        case.fail(f"the warning does not say {says!r}: {cache_warnings[0][:200]}")
+    if reused is not None:
+        hits = int(re.findall(r"cache hits: (\d+)", done.stderr)[-1])
+        if reused and not hits:
+            case.fail("the cache's intact rows were not used (every image embedded again)")
+        if not reused and hits:
+            case.fail(f"{hits} images took their features from a damaged cache", "silent")
 
 
 # --- 1. bank tamperings -------------------------------------------------------------------------
@@ -311,42 +354,14 @@ def bank_tamperings(world: World) -> None:
 
 
 # --- 2. cache corruptions -------------------------------------------------------------------------
+# The embedding cache is one SQLite database per cache key, <cache>/embeddings/<key>/features.sqlite,
+# with a signed row per content hash and the signing key beside it (src/oddling/embedding/cache.py).
+# Each case damages a copy of the warm cache behind oddling's back, with Python's own sqlite3 module
+# or the file system, and scores the incoming folder: the scores must be those of a clean run.
 
-def chunks(cache: Path) -> list[Path]:
-    return sorted(cache.glob("embeddings/*/chunk-*.npz"))
-
-
-def rewrite(chunk: Path, **arrays) -> None:
-    with np.load(chunk) as data:
-        content = {k: data[k] for k in data.files}
-    content.update(arrays)
-    with open(chunk, "wb") as f:
-        np.savez(f, **content)
-
-
-def poison(chunk: Path) -> None:
-    with np.load(chunk) as data:
-        vectors = data["vectors"]
-    rewrite(chunk, vectors=np.repeat(vectors[:1], len(vectors), axis=0))   # every image looks like one normal one
-
-
-def swap_rows(chunk: Path) -> None:
-    with np.load(chunk) as data:
-        vectors = data["vectors"]
-    rewrite(chunk, vectors=np.ascontiguousarray(vectors[::-1]))
-
-
-def rename_hashes(chunk: Path) -> None:
-    with np.load(chunk) as data:
-        hashes = data["sha256"]
-    rewrite(chunk, sha256=np.roll(hashes, 1))
-
-
-def unsign(chunk: Path) -> None:
-    with np.load(chunk) as data:
-        content = {k: data[k] for k in data.files if k != "mac"}
-    with open(chunk, "wb") as f:
-        np.savez(f, **content)
+def database(cache: Path) -> Path:
+    [db] = cache.glob("embeddings/*/features.sqlite")
+    return db
 
 
 def key_of(cache: Path) -> Path:
@@ -354,23 +369,76 @@ def key_of(cache: Path) -> Path:
     return key
 
 
-def many_garbage(cache: Path) -> None:
-    folder = chunks(cache)[0].parent
-    for i in range(70):
-        (folder / f"chunk-{i:032x}.npz").write_bytes(b"" if i % 2 else os.urandom(64))
+def sql(db: Path, statement: str, args=()) -> list[tuple]:
+    conn = sqlite3.connect(db, isolation_level=None)
+    try:
+        return conn.execute(statement, args).fetchall()
+    finally:
+        conn.close()   # the last connection: SQLite moves the WAL into the file and removes it
+
+
+def rows(db: Path) -> list[tuple]:
+    return sql(db, "SELECT sha256, vector, health, mac FROM features ORDER BY sha256")
+
+
+def rewrite_rows(db: Path, new_rows: list[tuple]) -> None:
+    conn = sqlite3.connect(db, isolation_level=None)
+    try:
+        conn.execute("BEGIN")
+        conn.execute("DELETE FROM features")
+        conn.executemany("INSERT INTO features VALUES (?, ?, ?, ?)", new_rows)
+        conn.execute("COMMIT")
+    finally:
+        conn.close()
+
+
+def signer(db: Path):
+    """The row signature oddling would write: what only someone who can read the key file can make."""
+    sys.path.insert(0, str(ROOT / "src"))
+    from oddling.embedding.cache import EmbeddingCache
+
+    cache = EmbeddingCache(db.parent)
+    cache._key, _ = cache._secret()
+    return cache._mac
+
+
+def whole_file(cache: Path, change) -> None:
+    db = database(cache)
+    assert not Path(f"{db}-wal").exists()            # every row is in the file itself
+    db.write_bytes(change(db.read_bytes()))
+
+
+def poison(cache: Path) -> None:
+    db = database(cache)
+    sql(db, "UPDATE features SET vector = (SELECT vector FROM features ORDER BY sha256 LIMIT 1)")
+
+
+def swap_rows(cache: Path) -> None:
+    db = database(cache)
+    old = rows(db)
+    rewrite_rows(db, [(d, v, h, m) for (d, _, h, m), (_, v, _, _) in zip(old, old[::-1])])
+
+
+def rename_hashes(cache: Path) -> None:
+    db = database(cache)
+    old = rows(db)
+    rewrite_rows(db, [(d, v, h, m) for (d, *_), (_, v, h, m) in zip(old, old[1:] + old[:1])])
 
 
 def nan_vectors(cache: Path) -> None:
-    chunk = chunks(cache)[0]
-    with np.load(chunk) as data:
-        vectors = data["vectors"]
-    rewrite(chunk, vectors=np.full_like(vectors, np.nan))
+    db = database(cache)
+    mac = signer(db)
+    new_rows = []
+    for digest, vector, health, _ in rows(db):
+        nan = np.full(len(vector) // 4, np.nan, "<f4").tobytes()     # the right length, NaN throughout
+        new_rows.append((digest, nan, health, mac(digest, nan, health)))
+    rewrite_rows(db, new_rows)
 
 
-def folder_for_a_chunk(cache: Path) -> None:
-    chunk = chunks(cache)[0]
-    chunk.unlink()
-    chunk.mkdir()
+def other_layout(cache: Path) -> None:
+    db = database(cache)
+    sql(db, "DROP TABLE features")
+    sql(db, "CREATE TABLE features (sha256 TEXT PRIMARY KEY, vector BLOB)")
 
 
 def key_a_link(cache: Path) -> None:
@@ -379,32 +447,73 @@ def key_a_link(cache: Path) -> None:
     key.symlink_to("/dev/zero")
 
 
+def folder_for_the_database(cache: Path) -> None:
+    db = database(cache)
+    db.unlink()
+    db.mkdir()
+
+
+def stale_file(suffix: str):
+    def apply(cache: Path) -> None:
+        Path(f"{database(cache)}{suffix}").write_bytes(os.urandom(4096))
+    return apply
+
+
+def read_only(cache: Path) -> None:
+    db = database(cache)
+    db.chmod(0o444)
+    db.parent.chmod(0o555)   # 0444 would forbid opening anything inside: the file could not be read at all
+
+
+def garbage_chunk(cache: Path) -> None:
+    (database(cache).parent / f"chunk-{'0' * 32}.npz").write_bytes(os.urandom(600))
+
+
+# (name, damage, warn: a warning is owed, what it must say, reused: whether the features of the
+# rows must (True) or must not (False) come from the cache, None where some may and some may not)
 CACHE_DAMAGE = [
-    ("chunk zero bytes", lambda c: [p.write_bytes(b"") for p in chunks(c)], True),
-    ("chunk garbage", lambda c: [p.write_bytes(os.urandom(500)) for p in chunks(c)], True),
-    ("chunk truncated", lambda c: [p.write_bytes(p.read_bytes()[:400]) for p in chunks(c)], True),
-    ("poisoned vectors (one normal vector for all)", lambda c: [poison(p) for p in chunks(c)], True),
-    ("vectors swapped between images", lambda c: [swap_rows(p) for p in chunks(c)], True),
-    ("content hashes moved to other vectors", lambda c: [rename_hashes(p) for p in chunks(c)], True),
-    ("unsigned chunk (earlier release layout)", lambda c: [unsign(p) for p in chunks(c)], True),
-    ("NaN vectors", nan_vectors, True),
-    ("key file deleted", lambda c: key_of(c).unlink(), False),
-    ("key file readable by others", lambda c: key_of(c).chmod(0o644), True),
-    ("key file replaced by another key", lambda c: key_of(c).write_bytes(os.urandom(32)), True),
-    ("key file a symbolic link", key_a_link, True),
-    ("70 unreadable chunks (compaction)", many_garbage, True),
-    ("a folder where a chunk should be", folder_for_a_chunk, True),
+    # an empty file is an empty database to SQLite: everything is embedded again, nothing to report
+    ("database zero bytes", lambda c: whole_file(c, lambda data: b""), False, None, False),
+    ("database garbage", lambda c: whole_file(c, lambda data: os.urandom(len(data))), True, "fresh one", False),
+    # (rows on the pages before the cut may still be read before the damage shows)
+    ("database truncated", lambda c: whole_file(c, lambda data: data[:len(data) // 3]), True, "fresh one", None),
+    ("features table of another layout", other_layout, True, "not an oddling embedding cache", False),
+    ("schema version of a newer oddling",
+     lambda c: sql(database(c), "UPDATE meta SET value = '99' WHERE key = 'schema_version'"), True, "newer", False),
+    # (the row whose vector was copied is still its own, and may be used)
+    ("poisoned vectors (one normal vector for all)", poison, True, "signature does not match", None),
+    ("vectors swapped between rows", swap_rows, True, "signature does not match", None),
+    ("content hashes moved to other rows", rename_hashes, True, "signature does not match", False),
+    ("signatures cleared", lambda c: sql(database(c), "UPDATE features SET mac = x''"), True,
+     "signature does not match", False),
+    ("NaN vectors, right length, signed with the cache's key", nan_vectors, True, "NaN", False),
+    ("vectors one float short", lambda c: sql(database(c), "UPDATE features SET vector = substr(vector, 5)"), True,
+     "expected", False),
+    ("text where a vector was", lambda c: sql(database(c), "UPDATE features SET vector = 'x'"), True,
+     "not binary", False),
+    # (a deleted key is a fresh key: the old rows no longer verify, a warning is not required)
+    ("key file deleted", lambda c: key_of(c).unlink(), False, None, False),
+    ("key file readable by others", lambda c: key_of(c).chmod(0o644), True, "a new key was made", False),
+    ("key file replaced by another key", lambda c: key_of(c).write_bytes(os.urandom(32)), True,
+     "signature does not match", False),
+    ("key file a symbolic link to /dev/zero", key_a_link, True, "a new key was made", False),
+    ("a folder where the database should be", folder_for_the_database, True, "cannot be written", False),
+    # SQLite ignores a WAL or journal whose header is not its own: the rows in the file are used
+    ("stale -wal file of garbage", stale_file("-wal"), False, None, True),
+    ("stale -journal file of garbage", stale_file("-journal"), False, None, True),
+    ("database and its folder read-only", read_only, True, "features already in it are used", True),
+    ("garbage chunk file of an earlier release", garbage_chunk, True, "damaged chunk files", True),
 ]
 
 
 def cache_corruptions(world: World) -> None:
-    for name, damage, warn in CACHE_DAMAGE:
+    for name, damage, warn, says, reused in CACHE_DAMAGE:
         case = Case("cache corruption", name)
         CASES.append(case)
         cache = world.fresh_cache(f"c{len(CASES)}")
         damage(cache)
-        # (a deleted key is a fresh cache whose old chunks no longer verify: a warning is not required)
-        expect_score(world, case, world.bank, cache, world.csv_bytes, warn=warn)
+        expect_score(world, case, world.bank, cache, world.csv_bytes, warn=warn, says=says, reused=reused,
+                     prefix=HONOUR_PERMISSIONS if damage is read_only else ())
 
 
 # --- 3. kill -9 at five points --------------------------------------------------------------------
