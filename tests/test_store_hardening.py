@@ -10,10 +10,12 @@ where a real write is wanted.
 from __future__ import annotations
 
 import builtins
+import contextlib
 import errno
 import io
 import json
 import os
+import signal
 import warnings
 from pathlib import Path
 
@@ -567,6 +569,40 @@ def test_a_key_that_is_not_private_is_replaced_and_its_rows_recomputed(tmp_path,
     assert n_embedded == len(paths)
     np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
     assert not key.is_symlink() and oct(key.stat().st_mode & 0o777) == oct(0o600)
+    _, n_again, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert n_again == 0 and messages == []
+
+
+@contextlib.contextmanager
+def _at_most(seconds: int):
+    """Fail the test instead of hanging it: SIGALRM interrupts a blocked open(2)."""
+    def stop(signum, frame):
+        raise AssertionError(f"blocked for {seconds} s")
+
+    previous = signal.signal(signal.SIGALRM, stop)
+    signal.alarm(seconds)
+    try:
+        yield
+    finally:
+        signal.alarm(0)
+        signal.signal(signal.SIGALRM, previous)
+
+
+@pytest.mark.skipif(not hasattr(os, "mkfifo"), reason="POSIX FIFOs")
+@pytest.mark.parametrize("name", ["cache.key", "features.sqlite"])
+def test_a_fifo_in_place_of_the_key_or_the_database_does_not_block_the_run(tmp_path, monkeypatch, name):
+    # Found by tests/hostile_campaign.py ("key file a FIFO", "a FIFO where the database should be"):
+    # opening either to read waited for a writer that never came, and the run hung.
+    paths, reference, db = _warm_store(tmp_path)
+    target = db.parent / name
+    target.unlink()
+    os.mkfifo(target)
+    with _at_most(60):
+        embedded, n_embedded, messages = _rerun(tmp_path, paths, monkeypatch)
+    assert len(messages) == 1 and "not a regular file" in messages[0], messages
+    assert n_embedded == len(paths)
+    np.testing.assert_array_equal(embedded.embeddings, reference.embeddings)
+    assert target.is_file()                              # a working key or database in its place
     _, n_again, messages = _rerun(tmp_path, paths, monkeypatch)
     assert n_again == 0 and messages == []
 

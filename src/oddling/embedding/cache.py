@@ -28,10 +28,10 @@ and its image is embedded again. A key file that is not a private regular file o
 user (another owner, readable by others, a link, the wrong length) is replaced by a new key, and
 the rows signed under the old one are dropped.
 
-The cache is an optimisation: a database file that is damaged (not SQLite, truncated) is removed
-with one warning and a fresh one made; a cache that cannot be written (a full disk, a read-only
-folder) is still read where SQLite can read it, writing stops after one warning, and the run goes
-on.
+The cache is an optimisation: a database file that is damaged (not a regular file, not SQLite,
+truncated) is removed with one warning and a fresh one made; a cache that cannot be written (a full
+disk, a read-only folder) is still read where SQLite can read it, writing stops after one warning,
+and the run goes on.
 
 Chunk files of earlier releases (`chunk-*.npz`, one HMAC per chunk under the same key) are
 imported once: each is verified as before, its rows are added to the database, and the file is
@@ -210,7 +210,8 @@ class EmbeddingCache:
     @staticmethod
     def _read_key(path: Path) -> bytes:
         try:
-            fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0))
+            # O_NONBLOCK: a FIFO put in its place must not wait for a writer forever
+            fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_NONBLOCK", 0))
         except FileNotFoundError:
             raise
         except OSError as exc:
@@ -219,9 +220,9 @@ class EmbeddingCache:
             raise
         with os.fdopen(fd, "rb") as f:
             info = os.fstat(f.fileno())
+            if not stat.S_ISREG(info.st_mode):
+                raise _Untrusted("is not a regular file")
             key = f.read(KEY_BYTES + 1)
-        if not stat.S_ISREG(info.st_mode):
-            raise _Untrusted("is not a regular file")
         if hasattr(os, "geteuid"):   # POSIX: private to the user who runs oddling
             if info.st_uid != os.geteuid():
                 raise _Untrusted(f"belongs to another user (uid {info.st_uid})")
@@ -289,7 +290,13 @@ class EmbeddingCache:
         _warn(f"the embedding cache {self.folder} cannot be written ({why}); {reads}, and this run goes on")
 
     def _connect_and_check(self, read_only: bool) -> sqlite3.Connection:
-        if self.path.exists() and not _is_sqlite(self.path):
+        try:
+            mode = self.path.stat().st_mode
+        except OSError:
+            mode = None   # none yet (SQLite makes it), or not reachable (SQLite says why)
+        if mode is not None and not stat.S_ISREG(mode):
+            raise _DamagedFile("not a regular file")   # opening a FIFO would wait for a writer forever
+        if mode is not None and not _is_sqlite(self.path):
             raise _DamagedFile("not an SQLite database")
         conn = _connect(self.path, read_only)
         try:
