@@ -12,6 +12,7 @@ corrupted data (output bytes that differ from a clean run, references lost by a 
 from __future__ import annotations
 
 import argparse
+import hashlib
 import json
 import os
 import re
@@ -441,10 +442,14 @@ def other_layout(cache: Path) -> None:
     sql(db, "CREATE TABLE features (sha256 TEXT PRIMARY KEY, vector BLOB)")
 
 
-def key_a_link(cache: Path) -> None:
-    key = key_of(cache)
-    key.unlink()
-    key.symlink_to("/dev/zero")
+def link_to_dev_zero(path: Path) -> None:
+    path.unlink()
+    path.symlink_to("/dev/zero")
+
+
+def fifo_for(path: Path) -> None:   # opening it to read waits for a writer
+    path.unlink()
+    os.mkfifo(path)
 
 
 def folder_for_the_database(cache: Path) -> None:
@@ -463,6 +468,14 @@ def read_only(cache: Path) -> None:
     db = database(cache)
     db.chmod(0o444)
     db.parent.chmod(0o555)   # 0444 would forbid opening anything inside: the file could not be read at all
+
+
+def read_only_file(cache: Path) -> None:
+    db = database(cache)
+    incoming = cache.parents[1] / "incoming"          # World.fresh_cache's layout
+    digest = hashlib.sha256((incoming / "s2_000.png").read_bytes()).hexdigest()
+    assert sql(db, "DELETE FROM features WHERE sha256 = ? RETURNING sha256", (digest,))
+    db.chmod(0o444)
 
 
 def garbage_chunk(cache: Path) -> None:
@@ -496,12 +509,18 @@ CACHE_DAMAGE = [
     ("key file readable by others", lambda c: key_of(c).chmod(0o644), True, "a new key was made", False),
     ("key file replaced by another key", lambda c: key_of(c).write_bytes(os.urandom(32)), True,
      "signature does not match", False),
-    ("key file a symbolic link to /dev/zero", key_a_link, True, "a new key was made", False),
-    ("a folder where the database should be", folder_for_the_database, True, "cannot be written", False),
+    ("key file a symbolic link to /dev/zero", lambda c: link_to_dev_zero(key_of(c)), True, "a new key was made", False),
+    ("key file a FIFO", lambda c: fifo_for(key_of(c)), True, "a new key was made", False),
+    # (oddling does not remove a folder: it is reported, and the run goes on without the cache)
+    ("a folder where the database should be", folder_for_the_database, True, "not a regular file", False),
+    ("a FIFO where the database should be", lambda c: fifo_for(database(c)), True, "fresh one", False),
+    ("database a symbolic link to /dev/zero", lambda c: link_to_dev_zero(database(c)), True, "fresh one", False),
     # SQLite ignores a WAL or journal whose header is not its own: the rows in the file are used
     ("stale -wal file of garbage", stale_file("-wal"), False, None, True),
     ("stale -journal file of garbage", stale_file("-journal"), False, None, True),
     ("database and its folder read-only", read_only, True, "features already in it are used", True),
+    # (one row is gone, so there is something to save, and saving it fails)
+    ("database file read-only, its folder writable", read_only_file, True, "could not save", True),
     ("garbage chunk file of an earlier release", garbage_chunk, True, "damaged chunk files", True),
 ]
 
@@ -513,7 +532,7 @@ def cache_corruptions(world: World) -> None:
         cache = world.fresh_cache(f"c{len(CASES)}")
         damage(cache)
         expect_score(world, case, world.bank, cache, world.csv_bytes, warn=warn, says=says, reused=reused,
-                     prefix=HONOUR_PERMISSIONS if damage is read_only else ())
+                     prefix=HONOUR_PERMISSIONS if "read-only" in name else ())
 
 
 # --- 3. kill -9 at five points --------------------------------------------------------------------
