@@ -340,12 +340,7 @@ class EmbeddingCache:
 
     def _replace_damaged(self, why: str) -> None:
         """Remove a damaged database file and make a fresh one: the cache is only a shortcut."""
-        if self._conn is not None:
-            try:
-                self._conn.close()
-            except sqlite3.Error:
-                pass
-            self._conn = None
+        self._disconnect()
         try:
             for suffix in ("", "-wal", "-shm"):
                 Path(f"{self.path}{suffix}").unlink(missing_ok=True)
@@ -503,12 +498,16 @@ class EmbeddingCache:
     def close(self) -> None:
         self.flush()
         with self._lock:
-            if self._conn is not None:
-                try:
-                    self._conn.close()
-                except sqlite3.Error:
-                    pass
-                self._conn = None
+            self._disconnect()
+
+    def _disconnect(self) -> None:
+        """Close the connection, if any; an error closing it changes nothing for the run."""
+        if self._conn is not None:
+            try:
+                self._conn.close()
+            except sqlite3.Error:
+                pass
+            self._conn = None
 
     # -- chunk files of earlier releases ---------------------------------------------------------
 
