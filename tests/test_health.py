@@ -164,7 +164,7 @@ def test_laplacian_equals_scipys_with_reflected_borders():
 
 def test_colourfulness_equals_the_papers_formula_taken_pixel_by_pixel():
     # Hasler & Suesstrunk 2003, written out literally in float64 (rg and yb per pixel, numpy's mean
-    # and population std) on scikit-image's colour samples: the sums-of-products form must agree.
+    # and population std) on scikit-image's colour samples: the histogram form in health.py must agree.
     from oddling.data.health import colourfulness
 
     for name in ("astronaut", "chelsea", "coffee", "rocket", "immunohistochemistry", "colorwheel", "retina"):
