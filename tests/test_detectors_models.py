@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from oddling.detectors import detector_class, make_detector
+from oddling.detectors.base import N_FOLDS, distinct_groups, group_folds
 from oddling.detectors.conformal import ConformalThreshold
 from oddling.detectors.gaussian import GaussianDetector
 from oddling.detectors.iforest import IsolationForestDetector
@@ -40,6 +41,23 @@ def rel_close(actual, expected, rtol=1e-6):
     np.testing.assert_allclose(actual, expected, rtol=rtol, atol=0.0)
 
 
+def fold_training_sets(x):
+    """What each of a detector's fold models is fitted on: the references without one fold."""
+    folds = group_folds(distinct_groups(None, len(x)))
+    return [x[folds != k] for k in range(N_FOLDS)]
+
+
+def check_folds_against(det, x, y, reference_scores):
+    """Every fold model scores y as the outside reference fitted on that fold's training set does,
+    and the detector's score is their mean."""
+    expected = []
+    for model, part in zip(det.models_, fold_training_sets(x)):
+        reference = reference_scores(part)
+        rel_close(model._score_model(y), reference)
+        expected.append(reference)
+    rel_close(det.anomaly_score(y).scores, np.mean(expected, axis=0))
+
+
 # --- Gaussian --------------------------------------------------------------------------------
 
 @pytest.mark.parametrize("n, d", [(120, 20), (40, 300)])   # n > d and n < d
@@ -49,10 +67,11 @@ def test_gaussian_equals_scikit_learn_ledoit_wolf(n, d):
     rng = np.random.default_rng(0)
     x, y = anisotropic(rng, n, d), anisotropic(rng, 30, d) * 1.5
     det = GaussianDetector().fit(x)
-    reference = LedoitWolf().fit(x)                       # scikit-learn's Ledoit & Wolf 2004
-    assert det.shrinkage_ == pytest.approx(reference.shrinkage_, rel=1e-9)
-    rel_close(det.anomaly_score(y).scores, reference.mahalanobis(y))     # squared distances
-    np.testing.assert_allclose(det.location_, reference.location_, rtol=1e-12, atol=1e-12)
+    for model, part in zip(det.models_, fold_training_sets(x)):
+        reference = LedoitWolf().fit(part)                  # scikit-learn's Ledoit & Wolf 2004
+        assert model.shrinkage_ == pytest.approx(reference.shrinkage_, rel=1e-9)
+        np.testing.assert_allclose(model.location_, reference.location_, rtol=1e-12, atol=1e-12)
+    check_folds_against(det, x, y, lambda part: LedoitWolf().fit(part).mahalanobis(y))   # squared distances
 
 
 def test_gaussian_without_shrinkage_equals_scikit_learn_empirical_covariance():
@@ -61,7 +80,7 @@ def test_gaussian_without_shrinkage_equals_scikit_learn_empirical_covariance():
     rng = np.random.default_rng(1)
     x, y = anisotropic(rng, 200, 10), anisotropic(rng, 40, 10) * 2.0
     det = GaussianDetector(shrinkage="none").fit(x)
-    rel_close(det.anomaly_score(y).scores, EmpiricalCovariance().fit(x).mahalanobis(y))   # scikit-learn
+    check_folds_against(det, x, y, lambda part: EmpiricalCovariance().fit(part).mahalanobis(y))   # scikit-learn
 
 
 def test_gaussian_fixed_shrinkage_equals_scikit_learn_shrunk_covariance():
@@ -71,16 +90,17 @@ def test_gaussian_fixed_shrinkage_equals_scikit_learn_shrunk_covariance():
     x, y = anisotropic(rng, 60, 25), anisotropic(rng, 20, 25)
     det = GaussianDetector(shrinkage=0.3).fit(x)
     # scikit-learn's ShrunkCovariance: (1 - a) S + a trace(S)/d I, the same target as ours
-    rel_close(det.anomaly_score(y).scores, ShrunkCovariance(shrinkage=0.3).fit(x).mahalanobis(y))
+    check_folds_against(det, x, y, lambda part: ShrunkCovariance(shrinkage=0.3).fit(part).mahalanobis(y))
 
 
 def test_gaussian_without_shrinkage_when_n_below_d_scores_leaving_the_span_high():
     rng = np.random.default_rng(3)
     x = rng.standard_normal((30, 50))
     det = GaussianDetector(shrinkage="none").fit(x)
-    inside = x.mean(axis=0) + 0.5 * (x[0] - x[1])          # in the references' affine span
-    outside = inside + 0.5 * np.linalg.svd(x - x.mean(axis=0))[2][-1]   # plus a step off it
-    inside_score, outside_score = det.anomaly_score(np.stack([inside, outside])).scores
+    model, part = det.models_[0], fold_training_sets(x)[0]   # one fold model and what it was fitted on
+    inside = part.mean(axis=0) + 0.5 * (part[0] - part[1])          # in its references' affine span
+    outside = inside + 0.5 * np.linalg.svd(part - part.mean(axis=0))[2][-1]   # plus a step off it
+    inside_score, outside_score = model._score_model(np.stack([inside, outside]))
     assert np.isfinite(inside_score) and outside_score > 1e6 * inside_score
 
 
@@ -93,11 +113,14 @@ def test_pca_residual_equals_scikit_learn_reconstruction_error(variance):
     rng = np.random.default_rng(4)
     x, y = anisotropic(rng, 150, 30), anisotropic(rng, 40, 30) + rng.standard_normal((40, 30))
     det = PCADetector(variance=variance).fit(x)
-    for reference in (PCA(n_components=variance, svd_solver="full").fit(x),
-                      PCA(n_components=det.n_components_, svd_solver="full").fit(x)):
-        assert reference.n_components_ == det.n_components_ < 30
-        residual = ((y - reference.inverse_transform(reference.transform(y))) ** 2).sum(axis=1)  # scikit-learn
-        rel_close(det.anomaly_score(y).scores, residual)
+
+    def residual(reference):   # scikit-learn's reconstruction error
+        return ((y - reference.inverse_transform(reference.transform(y))) ** 2).sum(axis=1)
+
+    for model, part in zip(det.models_, fold_training_sets(x)):
+        reference = PCA(n_components=variance, svd_solver="full").fit(part)
+        assert reference.n_components_ == model.n_components_ < 30
+    check_folds_against(det, x, y, lambda part: residual(PCA(n_components=variance, svd_solver="full").fit(part)))
 
 
 def test_pca_components_are_scikit_learn_principal_axes():
@@ -106,10 +129,11 @@ def test_pca_components_are_scikit_learn_principal_axes():
     rng = np.random.default_rng(5)
     x = anisotropic(rng, 100, 12)
     det = PCADetector(variance=0.9).fit(x)
-    reference = PCA(n_components=0.9, svd_solver="full").fit(x)
-    # the same subspace: the projectors agree (component signs are arbitrary)
-    np.testing.assert_allclose(det.components_.T @ det.components_,
-                               reference.components_.T @ reference.components_, atol=1e-8)
+    for model, part in zip(det.models_, fold_training_sets(x)):
+        reference = PCA(n_components=0.9, svd_solver="full").fit(part)
+        # the same subspace: the projectors agree (component signs are arbitrary)
+        np.testing.assert_allclose(model.components_.T @ model.components_,
+                                   reference.components_.T @ reference.components_, atol=1e-8)
 
 
 # --- isolation forest ------------------------------------------------------------------------
@@ -124,8 +148,10 @@ def test_isolation_forest_equals_scikit_learn_score_samples(params):
     y = np.vstack([rng.standard_normal((60, 6)), 4.0 + rng.standard_normal((10, 6))])
     det = IsolationForestDetector(**params).fit(x)
     full = {"n_estimators": 100, "max_samples": "auto", "random_state": 0, **params}
-    reference = -IsolationForest(**full).fit(x).score_samples(y)         # scikit-learn, Liu et al. 2008
-    rel_close(det.anomaly_score(y).scores, reference)
+    if isinstance(full["max_samples"], int):
+        full["max_samples"] = min(full["max_samples"], int(0.8 * len(x)))
+    # scikit-learn, Liu et al. 2008
+    check_folds_against(det, x, y, lambda part: -IsolationForest(**full).fit(part).score_samples(y))
 
 
 def test_isolation_forest_state_is_plain_arrays_and_scores_without_scikit_learn(monkeypatch):
@@ -212,32 +238,37 @@ def _drop_column(key):
 
 
 def _set(key, value, in_state=False):
+    """An array, or with in_state a key of the state (the first fold model's where it has one)."""
     def corrupt(state, arrays):
-        (state if in_state else arrays)[key] = value(arrays) if callable(value) else value
+        if in_state:
+            (state["folds"][0] if key in state["folds"][0] else state)[key] = value
+        else:
+            arrays[key] = value(arrays) if callable(value) else value
     return corrupt
 
 
 def _point_child_back(state, arrays):
-    inner = np.flatnonzero(arrays["left"] >= 0)
-    arrays["left"] = arrays["left"].copy()
-    arrays["left"][inner[1]] = inner[0]   # a cycle: the walk would never reach a leaf
+    inner = np.flatnonzero(arrays["fold0.left"] >= 0)
+    arrays["fold0.left"] = arrays["fold0.left"].copy()
+    arrays["fold0.left"][inner[1]] = inner[0]   # a cycle: the walk would never reach a leaf
 
 
 BAD_STATES = [
-    ("gaussian", _nan_in("location"), "NaN"),
-    ("gaussian", _nan_in("precision"), "NaN"),
-    ("gaussian", _drop_column("precision"), r"precision \(d, d\)"),
-    ("gaussian", _set("precision", lambda a: -a["precision"]), "positive definite"),
-    ("gaussian", _set("location", None), "needs 'location'"),
-    ("pca", _nan_in("mean"), "NaN"),
-    ("pca", _drop_column("components"), "components"),
-    ("pca", _set("components", lambda a: 2.0 * a["components"]), "orthonormal"),
+    ("gaussian", _nan_in("fold0.location"), "NaN"),
+    ("gaussian", _nan_in("fold2.precision"), "NaN"),
+    ("gaussian", _drop_column("fold0.precision"), r"precision \(d, d\)"),
+    ("gaussian", _set("fold4.precision", lambda a: -a["fold4.precision"]), "positive definite"),
+    ("gaussian", _set("fold0.location", None), "needs 'location'"),
+    ("pca", _nan_in("fold0.mean"), "NaN"),
+    ("pca", _drop_column("fold1.components"), "components"),
+    ("pca", _set("fold0.components", lambda a: 2.0 * a["fold0.components"]), "orthonormal"),
     ("pca", _set("n_components", 99, in_state=True), "n_components"),
-    ("iforest", _nan_in("threshold"), "NaN"),
-    ("iforest", _set("left", lambda a: a["left"][:-1]), "length"),
-    ("iforest", _set("feature", lambda a: a["feature"] + 16), "features must be"),
+    ("pca", _set("n_features", 15, in_state=True), "feature size"),
+    ("iforest", _nan_in("fold0.threshold"), "NaN"),
+    ("iforest", _set("fold3.left", lambda a: a["fold3.left"][:-1]), "length"),
+    ("iforest", _set("fold0.feature", lambda a: a["fold0.feature"] + 16), "features must be"),
     ("iforest", _point_child_back, "structure"),
-    ("iforest", _set("roots", None), "lacks arrays"),
+    ("iforest", _set("fold0.roots", None), "lacks arrays"),
     ("iforest", _set("max_samples", "many", in_state=True), "max_samples"),
 ]
 
@@ -288,8 +319,9 @@ def test_far_points_score_higher_than_normal_points(name):
         # Axis-parallel splits cannot isolate a point extreme in one coordinate only: it follows
         # the data's outermost branch (Hariri, Kind & Brunner, "Extended isolation forest", 2019).
         far = np.vstack([far, 10.0 * np.eye(8), -10.0 * np.eye(8)])
-    if name == "pca":   # the residual is blind along the kept axes: go off them, as far
-        off = far @ (np.eye(8) - det.components_.T @ det.components_)
+    if name == "pca":   # the residual is blind along the kept axes: go off them (a fold model's), as far
+        components = det.models_[0].components_
+        off = far @ (np.eye(8) - components.T @ components)
         far = off * (np.linalg.norm(far, axis=1) / np.linalg.norm(off, axis=1))[:, None]
     assert det.anomaly_score(far).scores.min() > normal.max()
 
@@ -312,5 +344,5 @@ def test_identical_references_are_refused_by_the_gaussian_and_reduce_pca_to_the_
     with pytest.raises(OddlingError, match="do not vary"):
         GaussianDetector().fit(x)
     det = PCADetector().fit(x)
-    assert det.n_components_ == 0   # no direction of variation: the residual is ||y - mean||^2
+    assert det.models_[0].n_components_ == 0   # no direction of variation: the residual is ||y - mean||^2
     np.testing.assert_allclose(det.anomaly_score(np.array([[1.0, 1.0, 1.0, 3.0]])).scores, [4.0])

@@ -139,16 +139,18 @@ def test_maps_light_up_the_drawn_defects(scenario, local_result, capsys):
     assert sum(inside) >= 0.8 * len(inside)
 
 
-def test_local_bank_records_mode_and_split_calibration_and_reloads(local_bank, local_result, scenario):
+def test_local_bank_calibrates_every_reference_and_reloads(local_bank, local_result, scenario):
+    from oddling.detectors.base import group_folds
+
     reloaded = load_bank(local_bank.path)
-    assert reloaded.detector.name == "patch-knn" and reloaded.representation["kind"] == "patches"
-    assert reloaded.detector.state()[0] == local_bank.detector.state()[0]
-    assert reloaded.calibration["method"].startswith("split")
-    held_out = {reloaded.references[i]["path"] for i in reloaded.detector.calibration_rows_}
-    assert len(held_out) == reloaded.calibration["n"] == 10   # 20% of 50
-    # Held-out references contribute no patch to the bank.
-    bank_refs = {reloaded.references[i]["path"] for i in np.unique(reloaded.detector.sources_)}
-    assert not bank_refs & held_out
+    det = reloaded.detector
+    assert det.name == "patch-knn" and reloaded.representation["kind"] == "patches"
+    assert det.state()[0] == local_bank.detector.state()[0]
+    assert reloaded.calibration["method"].startswith("5-fold cross-conformal")
+    assert reloaded.calibration["n"] == N_REFERENCES        # every reference, not a held-out share
+    # Each fold's coreset holds patches of that fold's references only (copies in one fold).
+    folds = group_folds(np.array([r["sha256"] for r in reloaded.references]), 5, 0)
+    np.testing.assert_array_equal(folds[det.sources_], np.repeat(np.arange(5), np.diff(det.fold_starts_)))
     again = oddling.score(scenario["test"], reloaded, options=OPTS)
     assert [r.score for r in again.rows] == [r.score for r in local_result.rows]
 

@@ -44,7 +44,7 @@ except ImportError:      # Windows: no flock; writers are not serialised there
 from oddling.data.health import STATS
 from oddling.detectors import make_detector
 from oddling.detectors.base import Detector
-from oddling.detectors.conformal import ConformalThreshold
+from oddling.detectors.conformal import GUARANTEES, ConformalThreshold, Guarantee
 from oddling.errors import OddlingError
 
 FORMAT_NAME = "oddling-bank"
@@ -83,7 +83,8 @@ class Bank:
         read-only memory map of features.npy; float16 when stored so (`vector_dtype`).
     calibration_scores : ndarray (n_cal,) float64, scores of known-normal images.
     calibration : dict
-        method, n, target_fpr, cutoff (flag when score > cutoff), rule.
+        method, n, target_fpr, cutoff (flag when score > cutoff), rule, guarantee ("marginal" or
+        "confident", with its confidence; absent in older banks: marginal) and the promise in words.
     health_stats : ndarray (n, len(health.STATS)) float64; health_fences : dict (Tukey fences).
     skipped : list of dict, reference files that could not be used: path, status.
     """
@@ -123,8 +124,14 @@ class Bank:
     def target_fpr(self) -> float:
         return float(self.calibration["target_fpr"])
 
+    @property
+    def guarantee(self) -> Guarantee:
+        return Guarantee.from_dict(self.calibration)
+
     def threshold(self, target_fpr: float | None = None) -> ConformalThreshold:
-        return ConformalThreshold(self.calibration_scores, self.target_fpr if target_fpr is None else target_fpr)
+        """p-values, cutoff and flags at the bank's rate (or `target_fpr`), under the bank's guarantee."""
+        return ConformalThreshold(self.calibration_scores, self.target_fpr if target_fpr is None else target_fpr,
+                                  self.guarantee)
 
     def metadata(self) -> dict:
         state, _ = self.detector.state()
@@ -529,7 +536,13 @@ def _check_calibration(f: _Fields, calibration: dict, scores: np.ndarray) -> Non
     n = f.get("n", int, None, required=False, source=calibration)
     if n is not None and n != len(scores):
         f.fail("calibration.n", f"is {n}, but {CALIBRATION_FILE} holds {len(scores)} scores")
-    expected = ConformalThreshold(scores, rate).cutoff
+    kind = f.get("guarantee", str, "marginal", required=False, source=calibration)
+    if kind not in GUARANTEES:
+        f.fail("calibration.guarantee", f"must be one of {', '.join(GUARANTEES)}, got {kind!r}")
+    confidence = f.get("confidence", (int, float, type(None)), None, required=False, source=calibration)
+    if kind == "confident" and not (confidence is not None and 0.0 < confidence < 1.0):
+        f.fail("calibration.confidence", f"must be in (0, 1) for the confident guarantee, got {confidence}")
+    expected = ConformalThreshold(scores, rate, Guarantee.from_dict(calibration)).cutoff
     recorded = math.inf if cutoff is None else float(cutoff)
     close = math.isfinite(expected) and abs(recorded - expected) <= 1e-9 * max(1.0, abs(expected))
     if not (recorded == expected or close):

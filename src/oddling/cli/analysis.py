@@ -10,8 +10,8 @@ import click
 from oddling import api
 from oddling.backbones import DEFAULT_BACKBONE
 from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
-from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, dask_option,
-                                run_options, target_fpr_override, user_errors)
+from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, calibration_options,
+                                dask_option, run_options, target_fpr_override, user_errors)
 from oddling.errors import OddlingError
 from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
 from oddling.jobs.common import check_output, plural, refuse_existing
@@ -75,36 +75,42 @@ def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict
 @click.option("--vector-dtype", type=click.Choice(["float32", "float16"]), default="float32", show_default=True,
               help="knn: store the reference vectors as float16 (half the disk and memory), refused unless it "
                    "moves scores by at most 1e-3, checked at fit (see README, Large collections).")
-@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
-              show_default=True, help="False-alarm rate on normal images that sets the flag cutoff.")
+@calibration_options
 @click.option("--force", is_flag=True, help="Replace an existing bank.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
 @dask_option
 @run_options
 @user_errors
 def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, index, vector_dtype,
-        target_fpr, force, as_json, **run):
+        target_fpr, guarantee, confidence, allow_no_cutoff, force, as_json, **run):
     """Build a reference bank from REFERENCE_DIR, a folder of known-normal images."""
     refuse_existing(bank_path, force=force)
     bank = api.fit(reference_dir, bank_path, representation=representation, backbone=backbone, detector=detector,
-                   params=_detector_params(detector, k, coreset, param_pairs, index), target_fpr=target_fpr, force=force,
+                   params=_detector_params(detector, k, coreset, param_pairs, index), target_fpr=target_fpr,
+                   guarantee=guarantee, confidence=confidence, allow_no_cutoff=allow_no_cutoff, force=force,
                    vector_dtype=vector_dtype, options=_options(**run))
     info = api.bank_info(bank_path)
     if as_json:
         _print_json(info | {"n_skipped": len(bank.skipped), "skipped": bank.skipped[:100]})
         return
-    cutoff = bank.calibration["cutoff"]
-    params = ", ".join(f"{key}={value}" for key, value in bank.detector.get_params().items())
-    click.echo(
-        f"Bank written to {bank_path}: {plural(bank.size, 'reference')}, representation {bank.representation['id']}, "
-        f"detector {bank.detector.name} ({params}); cutoff "
-        f"{'none (too few calibration scores)' if cutoff is None else _num(cutoff, 4)} at target false-alarm "
-        f"rate {target_fpr}.\n  score: {bank.detector.describe_score()}\n  calibration: {bank.calibration['method']}; "
-        f"{info['supported_rates']}.", err=True)
+    click.echo(fit_summary(bank, bank_path, info), err=True)
     if bank.skipped:
         click.echo(f"{plural(len(bank.skipped), 'file')} skipped (listed in {bank_path}/bank.json):", err=True)
         for item in bank.skipped[:10]:
             click.echo(f"  {item['path']}: {item['status']}", err=True)
+
+
+def fit_summary(bank, bank_path, info: dict) -> str:
+    """What fit says on stderr: the bank, its rate and promise (and why the rate is not 0.01), the score."""
+    cutoff = bank.calibration["cutoff"]
+    params = ", ".join(f"{key}={value}" for key, value in bank.detector.get_params().items())
+    note = bank.calibration.get("note")
+    return (f"Bank written to {bank_path}: {plural(bank.size, 'reference')}, representation "
+            f"{bank.representation['id']}, detector {bank.detector.name} ({params}); cutoff "
+            f"{'none' if cutoff is None else _num(cutoff, 4)} at target false-alarm rate {bank.target_fpr:g}"
+            f" ({bank.calibration['promise']})." + (f"\n  {note}." if note else "")
+            + f"\n  score: {bank.detector.describe_score()}\n  calibration: {bank.calibration['method']}; "
+            f"{info['supported_rates']}.")
 
 
 @click.command()
@@ -140,7 +146,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
         log = open_log(Path(log_path) if log_path else None, bank_path=bank_path)
     try:
         result = api.score(incoming_dir, bank_path, target_fpr=target_fpr, allow_empty=allow_empty,
-                           options=_options(**run))
+                           require_cutoff=fail_on_flagged, options=_options(**run))
         result.write_csv(out_csv, force=True)
         summary = result.summary() | {"out": str(out_csv)}
         if log is not None:
@@ -302,21 +308,21 @@ def report(folder, bank_path, log_path, since, until, last, out_html, labelled, 
                    "stages, patches, and pixels:32].")
 @click.option("--budget", "budget_minutes", type=click.FloatRange(min=0, min_open=True), default=None,
               help="Stop trying new representations after this many minutes; keep the best so far.")
-@click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.01,
-              show_default=True, help="False-alarm rate the chosen bank's cutoff is calibrated for.")
+@calibration_options
 @click.option("--seed", type=int, default=0, show_default=True, help="Seed of the choose / hold-out split.")
 @click.option("--json", "as_json", is_flag=True, help="Print the chosen configuration and leaderboard as JSON.")
 @click.option("--force", is_flag=True, help="Replace an existing bank and leaderboard.")
 @run_options
 @user_errors
 def tune(test_dir, reference_dir, bank_path, labels_csv, normal_labels, representations, budget_minutes, target_fpr,
-         seed, as_json, force, **run):
+         guarantee, confidence, allow_no_cutoff, seed, as_json, force, **run):
     """Find the representation and detector that best separate the labelled images in TEST_DIR.
 
     Embeds on this machine (there is no --dask here: it times each representation on it)."""
     result = api.tune(test_dir, reference_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
                       representations=list(representations) or None, budget_minutes=budget_minutes,
-                      target_fpr=target_fpr, seed=seed, force=force, options=_options(**run))
+                      target_fpr=target_fpr, guarantee=guarantee, confidence=confidence,
+                      allow_no_cutoff=allow_no_cutoff, seed=seed, force=force, options=_options(**run))
     summary = result.summary()
     if as_json:
         _print_json(summary)
@@ -329,9 +335,13 @@ def tune(test_dir, reference_dir, bank_path, labels_csv, normal_labels, represen
             continue
         low, high = t.auroc_ci95
         click.echo(f"{i:>4}  {t.auroc:6.3f}  {low:6.3f}-{high:6.3f}  {t.ms_per_image:7.1f}  "
-                   f"{t.representation} | {t.detector} {t.params}")
+                   f"{t.representation} | {t.detector} {t.params}"
+                   + ("  (cannot flag at the target rate)" if t.supports_target is False else ""))
+    cal = chosen.bank.calibration
     click.echo(
         f"\nChosen: {chosen.representation} | {chosen.detector} {chosen.params}\n"
+        f"  cutoff {'none' if cal['cutoff'] is None else _num(cal['cutoff'], 4)} at target false-alarm rate "
+        f"{cal['target_fpr']:g} ({cal['promise']})" + (f"; {cal['note']}" if cal.get("note") else "") + "\n"
         f"  AUROC on the held-out half ({result.n_holdout['normal']} normal, {result.n_holdout['anomalous']} "
         f"anomalous): {_num(result.holdout_auroc)}\n"
         f"  The leaderboard's AUROCs come from the half used to choose ({result.n_choose['normal']} normal, "

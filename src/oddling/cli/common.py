@@ -99,6 +99,29 @@ dask_option = click.option(
     "--dask", "dask", metavar="ADDRESS", envvar="DASK_SCHEDULER_ADDRESS", default=None,
     help="Embed on the workers of this Dask scheduler (e.g. tcp://10.0.0.5:8786) [default: $DASK_SCHEDULER_ADDRESS, "
          "else this machine]; needs oddling[cluster], see README.")
+def calibration_options(func):
+    """--target-fpr, --guarantee, --confidence and --allow-no-cutoff: what a new bank's cutoff promises
+    (fit and tune)."""
+    options = [
+        click.option("--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
+                     help="False-alarm rate on normal images that sets the flag cutoff [default: 0.01, or the "
+                          "first of 0.02, 0.05, 0.1 the calibration supports; the summary says which]."),
+        click.option("--guarantee", type=click.Choice(["marginal", "confident"]), default="marginal",
+                     show_default=True,
+                     help="marginal: the rate holds on average over reference sets; confident: it holds for this "
+                          "bank with probability --confidence (a lower cutoff rank, so more references needed)."),
+        click.option("--confidence", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
+                     help="With --guarantee confident: the probability that this bank's rate is at most the "
+                          "target [default: 0.9]."),
+        click.option("--allow-no-cutoff", is_flag=True,
+                     help="Write the bank even when the rate asked for cannot flag anything (then it flags "
+                          "nothing, and --fail-on-flagged, watch and serve refuse it)."),
+    ]
+    for option in reversed(options):
+        func = option(func)
+    return func
+
+
 target_fpr_override = click.option(
     "--target-fpr", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=None,
     help="Override the bank's false-alarm rate for this run.")

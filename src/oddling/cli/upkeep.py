@@ -132,7 +132,8 @@ def bank_info(bank_path, as_json):
         f"  references {info['n_references']} from {info['reference_root']} ({plural(info['n_skipped'], 'file')} skipped)\n"
         f"  detector   {det['name']} {det['params']}: {det['score']}\n"
         f"  calibration {cal['method']}; {cal['n']} scores; cutoff {_num(cal['cutoff'], 4)} at target false-alarm "
-        f"rate {cal['target_fpr']}\n  {info['supported_rates']}\n  vectors    {info['vector_dtype']}"
+        f"rate {cal['target_fpr']}\n  promise    {info['promise']}\n  {info['supported_rates']}\n"
+        f"  vectors    {info['vector_dtype']}"
         + (f" (scores moved by at most {info['vector_check']['max_score_difference']:.2g} on "
            f"{info['vector_check']['n_checked']} references, checked at fit)" if info.get("vector_check") else ""))
 

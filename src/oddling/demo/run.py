@@ -35,6 +35,8 @@ def run_demo(root: str | Path, seed: int = 0, force: bool = False, counts: Scene
     bank_path = root / "tiles.bank"
     log("Fitting the reference bank ...")
     bank = api.fit(scene_root / "reference", bank_path, options=options)
+    if bank.calibration.get("note"):
+        log(f"  {bank.calibration['note']}")
     log("Scoring the incoming batch ...")
     scored = api.score(scene_root / "incoming", bank, options=options)
     scores_csv = scored.write_csv(root / "incoming_scores.csv")
@@ -54,6 +56,7 @@ def run_demo(root: str | Path, seed: int = 0, force: bool = False, counts: Scene
         "incoming_truth": str(scene_root / "incoming_truth.csv"),
         "evaluation": {k: str(v) for k, v in eval_paths.items()},
         "n_references": bank.size,
+        "target_fpr": bank.target_fpr,
         "incoming": scored.summary(),
         "auroc": m["auroc"],
         "auroc_ci95": m["auroc_ci95"],

@@ -132,55 +132,120 @@ def group_folds(groups: np.ndarray, n_folds: int = N_FOLDS, seed: int = SEED) ->
     return np.array([fold_of_group[g] for g in groups.tolist()], dtype=np.int64)
 
 
-def cross_conformal_scores(detector: Detector, features: np.ndarray, groups: np.ndarray,
-                           n_folds: int = N_FOLDS, seed: int = SEED) -> np.ndarray:
-    """K-fold cross-conformal calibration scores (Vovk, "Cross-conformal predictors", Annals of
-    Mathematics and Artificial Intelligence 2015): each reference is scored by a copy of the
-    detector fitted without its fold, as a new image is scored by a detector that never saw it.
+def cross_conformal_scores(detector: "CrossConformalDetector", features: np.ndarray, groups: np.ndarray,
+                           n_folds: int = N_FOLDS, seed: int = SEED) -> tuple[np.ndarray, list]:
+    """K-fold cross-conformal calibration (Vovk, "Cross-conformal predictors", Annals of Mathematics
+    and Artificial Intelligence 2015): each reference is scored by a copy of the detector fitted
+    without its fold, as a new image is scored by a detector that never saw it.
 
-    The final detector is fitted on all references, so new normal images meet a model trained on
-    slightly more data than the fold models: their scores are, if anything, a little lower, and
-    the p-values err on the conservative side.
+    Returns (calibration scores, the K fold models). The fold models are kept: a new image's score
+    is the mean of theirs (`CrossConformalDetector.anomaly_score`), so it comes from models trained
+    on as many references as the ones that scored the calibration images. A single model refitted
+    on all references would score new images lower than its folds scored the references (it has seen
+    more), and the bank would flag far fewer than its rate promises.
     """
     folds = group_folds(groups, n_folds, seed)
     scores = np.empty(len(features), dtype=np.float64)
+    models = []
     for fold in range(n_folds):
         held = folds == fold
         model = detector.clone()._fit_model(features[~held])
         scores[held] = model._score_model(features[held])
-    return scores
+        models.append(model)
+    return scores, models
 
 
 CROSS_CONFORMAL = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
-                   "fold (copies of a file kept in one fold)")
+                   "fold (copies of a file kept in one fold); a new image's score is the mean of the "
+                   f"{N_FOLDS} fold models' scores")
+# What banks written before the fold models were kept say: one model refitted on all references.
+REFIT_CROSS_CONFORMAL = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
+                         "fold (copies of a file kept in one fold)")
+FOLD_PREFIX = "fold"
 
 
 class CrossConformalDetector(Detector):
     """A detector whose model has no exact, cheap leave-one-out (Gaussian, PCA, isolation forest):
-    fitted on all references, calibrated K-fold cross-conformally.
+    K fold models, each fitted without one fold of the references and calibrated on it; a new image
+    is scored by all K and gets the mean of their scores.
 
-    Subclasses implement `_fit_model(features) -> self` (sets the model's fitted attributes) and
-    `_score_model(features) -> (n,) float64`, both on validated (n, d) arrays.
+    Subclasses implement, for one model on validated (n, d) arrays: `_fit_model(features) -> self`
+    (sets the model's fitted attributes), `_score_model(features) -> (n,) float64`,
+    `_model_state() -> (dict, arrays)` and `_load_model(state, arrays) -> self` (validated: a bad
+    value raises OddlingError). Banks written before the fold models were kept hold one model
+    refitted on all references; they load as a single model and score as before.
     """
 
     def fit(self, features: np.ndarray, groups: np.ndarray | None = None) -> "CrossConformalDetector":
         features = check_features(features)
         groups = distinct_groups(groups, len(features))
-        self.calibration_scores_ = cross_conformal_scores(self, features, groups)
+        self.calibration_scores_, self.models_ = cross_conformal_scores(self, features, groups)
         self.calibration_method_ = CROSS_CONFORMAL
-        self._fit_model(features)
         self.n_features_in_ = int(features.shape[1])
         return self
 
     def anomaly_score(self, features: np.ndarray) -> Scores:
+        check_fitted(self, "models_")
         features = check_features(features)
         if features.shape[1] != self.n_features_in_:
             raise OddlingError(f"features have {features.shape[1]} dimensions; the detector was fitted on "
                                f"{self.n_features_in_}")
-        return Scores(np.asarray(self._score_model(features), dtype=np.float64))
+        total = np.zeros(len(features), dtype=np.float64)
+        for model in self.models_:
+            total += np.asarray(model._score_model(features), dtype=np.float64)
+        return Scores(total / len(self.models_))
+
+    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        check_fitted(self, "models_")
+        if len(self.models_) == 1 and getattr(self, "legacy_", False):
+            state, arrays = self.models_[0]._model_state()
+            return state | {"calibration_method": self.calibration_method_}, arrays
+        folds, arrays = [], {}
+        for k, model in enumerate(self.models_):
+            state, model_arrays = model._model_state()
+            folds.append(state)
+            arrays.update({f"{FOLD_PREFIX}{k}.{name}": array for name, array in model_arrays.items()})
+        return {"calibration_method": self.calibration_method_, "n_features": self.n_features_in_,
+                "folds": folds}, arrays
+
+    def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "CrossConformalDetector":
+        folds = state.get("folds")
+        if folds is None:        # an older bank: one model refitted on all references
+            model = self.clone()._load_model(state, arrays)
+            self.models_, self.legacy_ = [model], True
+            self.calibration_method_ = str(state.get("calibration_method", REFIT_CROSS_CONFORMAL))
+            self.n_features_in_ = model.n_features_in_
+            return self
+        if not isinstance(folds, list) or not folds or not all(isinstance(s, dict) for s in folds):
+            raise OddlingError(f"{self.name} state: folds must be a non-empty list of objects")
+        models = []
+        for k, fold_state in enumerate(folds):
+            prefix = f"{FOLD_PREFIX}{k}."
+            fold_arrays = {name[len(prefix):]: a for name, a in arrays.items() if name.startswith(prefix)}
+            models.append(self.clone()._load_model(fold_state, fold_arrays))
+        dims = {m.n_features_in_ for m in models}
+        if len(dims) != 1 or dims != {state.get("n_features")}:
+            raise OddlingError(f"{self.name} state: the fold models disagree on the feature size "
+                               f"({sorted(dims)}, recorded {state.get('n_features')!r})")
+        self.models_, self.legacy_ = models, False
+        self.calibration_method_ = str(state.get("calibration_method", CROSS_CONFORMAL))
+        self.n_features_in_ = int(state["n_features"])
+        return self
 
     def _fit_model(self, features: np.ndarray) -> "CrossConformalDetector":
         raise NotImplementedError
 
     def _score_model(self, features: np.ndarray) -> np.ndarray:
         raise NotImplementedError
+
+    def _model_state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        raise NotImplementedError
+
+    def _load_model(self, state: dict, arrays: dict[str, np.ndarray]) -> "CrossConformalDetector":
+        raise NotImplementedError
+
+
+def check_fitted(detector: Detector, attribute: str) -> None:
+    """A clear message instead of an AttributeError when a detector is used before `fit`."""
+    if not hasattr(detector, attribute):
+        raise OddlingError(f"this {detector.name} detector is not fitted yet: call fit(features) first")

@@ -13,7 +13,7 @@ import numbers
 
 import numpy as np
 
-from oddling.detectors.base import CROSS_CONFORMAL, CrossConformalDetector
+from oddling.detectors.base import CrossConformalDetector
 from oddling.errors import OddlingError
 
 # Eigenvalues below this share of the largest are numerical zeros: directions in which no
@@ -67,6 +67,7 @@ class GaussianDetector(CrossConformalDetector):
     location_ : ndarray (d,), mean of the references.
     precision_ : ndarray (d, d), inverse of the shrunk covariance.
     shrinkage_ : float, the intensity a used.
+    (each of the fold models `models_` holds these three; a new image's score is the mean of theirs)
     calibration_scores_ : ndarray (n,), cross-conformal scores of the references.
     calibration_method_ : str
 
@@ -122,17 +123,17 @@ class GaussianDetector(CrossConformalDetector):
         self.location_ = location
         self.precision_ = stable_precision(covariance)
         self.shrinkage_ = float(amount)
+        self.n_features_in_ = int(x.shape[1])
         return self
 
     def _score_model(self, features: np.ndarray) -> np.ndarray:
         diff = np.asarray(features, dtype=np.float64) - self.location_
         return np.einsum("ij,jk,ik->i", diff, self.precision_, diff)
 
-    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
-        return ({"shrinkage": self.shrinkage_, "calibration_method": self.calibration_method_},
-                {"location": self.location_, "precision": self.precision_})
+    def _model_state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        return {"shrinkage": self.shrinkage_}, {"location": self.location_, "precision": self.precision_}
 
-    def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "GaussianDetector":
+    def _load_model(self, state: dict, arrays: dict[str, np.ndarray]) -> "GaussianDetector":
         self._check_shrinkage()
         location, precision = arrays.get("location"), arrays.get("precision")
         if location is None or precision is None:
@@ -152,7 +153,6 @@ class GaussianDetector(CrossConformalDetector):
             raise OddlingError("Gaussian state: precision is not positive definite") from exc
         self.location_, self.precision_ = location, precision
         self.shrinkage_ = float(state.get("shrinkage", float("nan")))
-        self.calibration_method_ = str(state.get("calibration_method", CROSS_CONFORMAL))
         self.n_features_in_ = len(location)
         return self
 

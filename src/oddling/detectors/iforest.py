@@ -14,7 +14,7 @@ import numbers
 
 import numpy as np
 
-from oddling.detectors.base import CROSS_CONFORMAL, CrossConformalDetector
+from oddling.detectors.base import CrossConformalDetector
 from oddling.errors import OddlingError
 
 QUERY_CHUNK = 4096   # rows walked at once: bounds the (rows x trees) node and depth buffers
@@ -175,6 +175,7 @@ class IsolationForestDetector(CrossConformalDetector):
                                  random_state=int(self.random_state)).fit(features)
         self.trees_ = flatten_trees(forest)
         self.max_samples_ = int(forest.max_samples_)
+        self.n_features_in_ = int(features.shape[1])
         return self
 
     def _score_model(self, features: np.ndarray) -> np.ndarray:
@@ -182,11 +183,10 @@ class IsolationForestDetector(CrossConformalDetector):
                  for start in range(0, len(features), QUERY_CHUNK)]
         return np.concatenate(parts) if parts else np.zeros(0)
 
-    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
-        return ({"max_samples": self.max_samples_, "n_features": self.n_features_in_,
-                 "calibration_method": self.calibration_method_}, dict(self.trees_))
+    def _model_state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        return {"max_samples": self.max_samples_, "n_features": self.n_features_in_}, dict(self.trees_)
 
-    def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "IsolationForestDetector":
+    def _load_model(self, state: dict, arrays: dict[str, np.ndarray]) -> "IsolationForestDetector":
         self._check_params()
         max_samples, n_features = state.get("max_samples"), state.get("n_features")
         for key, value in (("max_samples", max_samples), ("n_features", n_features)):
@@ -194,7 +194,6 @@ class IsolationForestDetector(CrossConformalDetector):
                 raise OddlingError(f"isolation forest state: {key} must be an integer >= 1, got: {value!r}")
         self.trees_ = check_trees(arrays, int(n_features))
         self.max_samples_, self.n_features_in_ = int(max_samples), int(n_features)
-        self.calibration_method_ = str(state.get("calibration_method", CROSS_CONFORMAL))
         return self
 
     def describe_score(self) -> str:

@@ -29,8 +29,10 @@ STRIDE = 8
 PROJECTION_DIM = 128
 SEED = 0
 MAP_SIGMA = 4.0             # pixels of the network input (PatchCore smooths at this resolution too)
-CALIBRATION_SHARE = 0.2
-MIN_CALIBRATION = 10
+N_FOLDS = 5
+# Neighbours looked up per location when scoring: enough that one of them nearly always comes from
+# another fold than the nearest (see `fold_scores`).
+FOLD_SEARCH = 4
 
 
 def local_preprocessing(prep: Preprocessing) -> Preprocessing:
@@ -152,24 +154,29 @@ class PatchIndex:
 
     def __init__(self, patches: np.ndarray):
         patches = np.ascontiguousarray(patches, dtype=np.float32)
+        self.size = len(patches)
         self._index = faiss.IndexFlatL2(patches.shape[1])
         self._index.add(patches)
 
-    def nearest(self, queries: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(distance, bank row) of the nearest bank patch for each query row."""
-        sq, idx = self._index.search(np.ascontiguousarray(queries, dtype=np.float32), 1)
-        return np.sqrt(np.maximum(sq[:, 0], 0.0)).astype(np.float64), idx[:, 0]
+    def nearest(self, queries: np.ndarray, k: int = 1) -> tuple[np.ndarray, np.ndarray]:
+        """(distances, bank rows) of the k nearest bank patches of each query row, nearest first;
+        (n,) arrays for k = 1, else (n, k)."""
+        k = min(k, self.size)
+        sq, idx = self._index.search(np.ascontiguousarray(queries, dtype=np.float32), k)
+        distances = np.sqrt(np.maximum(sq, 0.0)).astype(np.float64)
+        return (distances[:, 0], idx[:, 0]) if k == 1 else (distances, idx)
 
 
 @dataclass
 class PatchScores:
-    scores: np.ndarray     # (n,) max nearest-patch distance over locations
+    scores: np.ndarray     # (n,) image scores
     maps: np.ndarray       # (n, G, G) nearest-patch distance per location
     worst_source: np.ndarray  # (n,) reference row of the patch nearest to the worst location
 
 
 def score_patches(index: PatchIndex, patch_sources: np.ndarray, features: np.ndarray) -> PatchScores:
-    """features (n, G*G, C) -> image scores, grid maps and where the worst location's match came from."""
+    """features (n, G*G, C) -> image scores (the largest nearest-patch distance), grid maps and where
+    the worst location's match came from: one model, the bank's whole coreset."""
     n, locations, dim = features.shape
     grid = int(round(np.sqrt(locations)))
     if n == 0:
@@ -179,6 +186,38 @@ def score_patches(index: PatchIndex, patch_sources: np.ndarray, features: np.nda
     worst = dist.argmax(axis=1)
     sources = np.asarray(patch_sources)[rows.reshape(n, locations)[np.arange(n), worst]]
     return PatchScores(dist.max(axis=1), dist.reshape(n, grid, grid), sources)
+
+
+def fold_scores(index: PatchIndex, patch_sources: np.ndarray, patch_folds: np.ndarray, n_folds: int,
+                features: np.ndarray) -> PatchScores:
+    """features (n, G*G, C) -> scores against the fold models of a cross-conformal bank.
+
+    Fold model j is the coreset of every fold but j. At each location the nearest patch of the whole
+    coreset (fold f, distance d1) is also the nearest of every fold model but f's, whose nearest is
+    the first of the FOLD_SEARCH neighbours from another fold (d2; if all come from f, the last one's
+    distance, a lower bound, which can only lower the score). So one search gives every fold model's
+    distances: d1 for j != f, d2 for j = f. Each fold model's image score is its largest location;
+    the image score is the mean over the fold models, and the map is the per-location mean,
+    d1 + (d2 - d1) / K. The calibration scores come from the same fold models (`fit_fold_bank`), so
+    a new normal image's score and a reference's are alike in distribution.
+    """
+    n, locations, dim = features.shape
+    grid = int(round(np.sqrt(locations)))
+    if n == 0:
+        return PatchScores(np.zeros(0), np.zeros((0, grid, grid)), np.zeros(0, np.int64))
+    dist, rows = index.nearest(features.reshape(-1, dim), FOLD_SEARCH)
+    dist, rows = dist.reshape(n * locations, -1), rows.reshape(n * locations, -1)
+    folds = np.asarray(patch_folds)[rows]
+    other = folds != folds[:, :1]
+    second = np.where(other.any(axis=1), other.argmax(axis=1), dist.shape[1] - 1)
+    d1 = dist[:, 0].reshape(n, locations)
+    d2 = dist[np.arange(len(dist)), second].reshape(n, locations)
+    nearest_fold = folds[:, 0].reshape(n, locations)
+    per_fold = np.stack([np.where(nearest_fold == j, d2, d1).max(axis=1) for j in range(n_folds)], axis=1)
+    maps = d1 + (d2 - d1) / n_folds
+    worst = maps.argmax(axis=1)
+    sources = np.asarray(patch_sources)[rows[:, 0].reshape(n, locations)[np.arange(n), worst]]
+    return PatchScores(per_fold.mean(axis=1), maps.reshape(n, grid, grid), sources)
 
 
 def upsample_map(grid_map: np.ndarray, size: tuple[int, int], crop: int = 224, sigma: float = MAP_SIGMA) -> np.ndarray:
@@ -205,18 +244,6 @@ def upsample_map(grid_map: np.ndarray, size: tuple[int, int], crop: int = 224, s
     return out
 
 
-def split_calibration(hashes: list[str], seed: int = SEED) -> tuple[np.ndarray, np.ndarray]:
-    """(bank rows, calibration rows): a seeded share of the distinct images (all copies of one
-    file on the same side) held out to calibrate, at least MIN_CALIBRATION of them, and never
-    more than half."""
-    distinct = sorted(set(hashes))
-    n_cal = min(max(MIN_CALIBRATION, int(round(CALIBRATION_SHARE * len(distinct)))), len(distinct) // 2)
-    held = set(np.random.default_rng(seed).permutation(len(distinct))[:n_cal].tolist())
-    held_hashes = {distinct[i] for i in held}
-    is_cal = np.array([h in held_hashes for h in hashes], dtype=bool)
-    return np.flatnonzero(~is_cal), np.flatnonzero(is_cal)
-
-
 def overlay(image, heat: np.ndarray, vmax: float | None = None):
     """The image with the anomaly map blended over it (jet colours from 0 to vmax, alpha 0.5)."""
     from matplotlib import colormaps
@@ -230,31 +257,45 @@ def overlay(image, heat: np.ndarray, vmax: float | None = None):
 
 
 @dataclass
-class PatchBank:
-    patches: np.ndarray            # (m, c) coreset of the bank images' patches
+class FoldBank:
+    patches: np.ndarray            # (m, c) the folds' coresets, fold by fold
     sources: np.ndarray            # (m,) reference row each patch came from
-    calibration_rows: np.ndarray   # references held out to calibrate
-    calibration_scores: np.ndarray
+    fold_starts: np.ndarray        # (K + 1,) fold k's patches are rows fold_starts[k]:fold_starts[k + 1]
+    calibration_scores: np.ndarray  # (n,) each reference scored by the fold model without its fold
     n_patches: int                 # patches before the coreset
 
 
-def fit_patch_bank(features: np.ndarray, hashes: list[str], fraction: float, seed: int = SEED) -> PatchBank:
-    """features (n, G*G, c) of the references -> coreset memory bank and split calibration scores.
+def fit_fold_bank(features: np.ndarray, folds: np.ndarray, n_folds: int, fraction: float,
+                  seed: int = SEED) -> FoldBank:
+    """features (n, G*G, c) of the references, their fold numbers -> cross-conformal memory bank.
 
-    Split calibration, not leave-one-out: leaving one image out would mean one coreset per
-    reference. The held-out images are scored against the coreset of the others exactly as new
-    images will be, so their scores are exchangeable with new normal images' scores.
+    Each fold's patches get their own greedy k-center coreset; fold model j is the union of the
+    other folds' coresets, so it never saw fold j, and scores fold j's references exactly (a search
+    of the union without fold j) as new images will be scored by it. The bank keeps all the folds'
+    coresets: the coreset of all references. Greedy k-center costs (patches x centres) per fold,
+    so K coresets of n/K images cost about 1/K of one coreset of all of them.
     """
-    bank_rows, cal_rows = split_calibration(hashes, seed)
-    patches = features[bank_rows].reshape(-1, features.shape[-1])
-    sources = np.repeat(bank_rows, features.shape[1])
-    keep = coreset(patches, fraction, seed)
-    patches, sources = np.ascontiguousarray(patches[keep]), sources[keep]
-    cal = score_patches(PatchIndex(patches), sources, features[cal_rows])
-    return PatchBank(patches, sources.astype(np.int64), cal_rows, cal.scores, len(bank_rows) * features.shape[1])
+    locations, dim = features.shape[1], features.shape[2]
+    parts, sources, starts = [], [], [0]
+    for fold in range(n_folds):
+        rows = np.flatnonzero(folds == fold)
+        patches = features[rows].reshape(-1, dim)
+        keep = coreset(patches, fraction, seed)
+        parts.append(np.ascontiguousarray(patches[keep]))
+        sources.append(np.repeat(rows, locations)[keep])
+        starts.append(starts[-1] + len(keep))
+    patches, starts = np.concatenate(parts), np.asarray(starts, dtype=np.int64)
+    calibration = np.empty(len(features), dtype=np.float64)
+    for fold in range(n_folds):
+        held = folds == fold
+        others = np.concatenate([patches[:starts[fold]], patches[starts[fold + 1]:]])
+        calibration[held] = score_patches(PatchIndex(others), np.zeros(len(others), np.int64),
+                                          features[held]).scores
+    return FoldBank(patches, np.concatenate(sources).astype(np.int64), starts, calibration,
+                    len(features) * locations)
 
 
-from oddling.detectors.base import Detector, Scores, check_features, distinct_groups  # noqa: E402
+from oddling.detectors.base import Detector, Scores, check_features, check_fitted, distinct_groups  # noqa: E402
 from oddling.errors import OddlingError  # noqa: E402
 
 
@@ -266,20 +307,26 @@ class PatchKNNDetector(Detector):
     coreset : float, default 0.1
         Share of the reference patches kept (greedy k-center, Sener & Savarese 2018).
     seed : int, default 0
-        Seeds the calibration split and the coreset's random projection.
+        Seeds the folds and the coreset's random projection.
+    folds : int >= 2, default 5
+        Cross-conformal folds: each reference is scored by the coreset of the other folds, so n
+        references give n calibration scores.
 
     Attributes
     ----------
-    patches_ : ndarray (m, c) float32, the coreset of reference patches.
+    patches_ : ndarray (m, c) float32, the coreset of reference patches, fold by fold.
     sources_ : ndarray (m,) int64, the reference row each kept patch came from.
-    calibration_scores_ : scores of the held-out references (split conformal).
-    calibration_rows_ : ndarray, reference rows held out to calibrate.
+    fold_starts_ : ndarray (folds + 1,) int64, where each fold's patches start in `patches_`; None
+        for banks written with split calibration (one model, the coreset of the non-held-out
+        references).
+    calibration_scores_ : each reference's score by the fold model that did not see it.
     n_patches_ : int, patches before the coreset.
 
     References
     ----------
     Cohen & Hoshen, "Sub-image anomaly detection with deep pyramid correspondences", 2020;
-    Roth et al., "Towards total recall in industrial anomaly detection", CVPR 2022.
+    Roth et al., "Towards total recall in industrial anomaly detection", CVPR 2022;
+    Vovk, "Cross-conformal predictors", Annals of Mathematics and Artificial Intelligence 2015.
     """
 
     name = "patch-knn"
@@ -290,48 +337,64 @@ class PatchKNNDetector(Detector):
     has_neighbours = True
     evidence_title = "Reference with the patch nearest to the worst spot (nearest-patch distance)"
 
-    def __init__(self, coreset: float = 0.1, seed: int = SEED):
+    def __init__(self, coreset: float = 0.1, seed: int = SEED, folds: int = N_FOLDS):
         self.coreset = coreset
         self.seed = seed
+        self.folds = folds
 
     def get_params(self) -> dict:
-        return {"coreset": self.coreset, "seed": self.seed}
+        return {"coreset": self.coreset, "seed": self.seed, "folds": self.folds}
 
     def _check_params(self) -> None:
         if isinstance(self.coreset, bool) or not isinstance(self.coreset, (int, float)) or not 0.0 < self.coreset <= 1.0:
             raise OddlingError(f"coreset must be in (0, 1], got: {self.coreset!r}")
         if isinstance(self.seed, bool) or not isinstance(self.seed, int):
             raise OddlingError(f"seed must be an integer, got: {self.seed!r}")
+        if isinstance(self.folds, bool) or not isinstance(self.folds, int) or self.folds < 2:
+            raise OddlingError(f"folds must be an integer >= 2, got: {self.folds!r}")
 
     def fit(self, features: np.ndarray, groups: np.ndarray | None = None) -> "PatchKNNDetector":
-        from oddling.detectors.base import check_features, distinct_groups
+        from oddling.detectors.base import check_features, distinct_groups, group_folds
         self._check_params()
         features = check_features(features, "patches")
         groups = distinct_groups(groups, len(features))
-        distinct = len(set(groups.tolist()))
-        if distinct < 2 * MIN_CALIBRATION:
-            raise OddlingError(f"the patch detector needs at least {2 * MIN_CALIBRATION} distinct references "
-                               f"(half of them at most are held out to calibrate), got {distinct}")
-        bank = fit_patch_bank(features, groups.tolist(), self.coreset, self.seed)
-        self.patches_, self.sources_ = bank.patches, bank.sources
+        folds = group_folds(groups, self.folds, self.seed)   # copies of a file in one fold
+        bank = fit_fold_bank(features, folds, self.folds, self.coreset, self.seed)
+        self.patches_, self.sources_, self.fold_starts_ = bank.patches, bank.sources, bank.fold_starts
         self.calibration_scores_ = bank.calibration_scores
-        self.calibration_rows_ = np.asarray(bank.calibration_rows, dtype=np.int64)
         self.n_patches_ = int(bank.n_patches)
         self.grid_ = int(round(np.sqrt(features.shape[1])))
-        self.calibration_method_ = SPLIT_CALIBRATION
+        self.calibration_method_ = cross_conformal_method(self.folds)
         return self
 
+    def _patch_folds(self) -> np.ndarray:
+        return np.repeat(np.arange(len(self.fold_starts_) - 1), np.diff(self.fold_starts_))
+
     def anomaly_score(self, features: np.ndarray):
+        check_fitted(self, "patches_")
         features = check_features(features, "patches")
-        ps = score_patches(PatchIndex(self.patches_), self.sources_, features)
+        if features.shape[2] != self.patches_.shape[1]:
+            raise OddlingError(f"patch features have {features.shape[2]} channels; the detector was fitted on "
+                               f"{self.patches_.shape[1]}")
+        index = PatchIndex(self.patches_)
+        if self.fold_starts_ is None:
+            ps = score_patches(index, self.sources_, features)
+        else:
+            ps = fold_scores(index, self.sources_, self._patch_folds(), len(self.fold_starts_) - 1, features)
         return Scores(ps.scores, ps.worst_source[:, None], ps.scores[:, None], ps.maps)
 
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:
-        return ({"n_patches": self.n_patches_, "coreset_size": int(len(self.patches_)),
+        check_fitted(self, "patches_")
+        state = {"n_patches": self.n_patches_, "coreset_size": int(len(self.patches_)),
                  "patch_dim": int(self.patches_.shape[1]), "grid": self.grid_,
                  "size_mb": round(self.patches_.nbytes / 2**20, 3),
-                 "calibration_method": self.calibration_method_},
-                {"patches": self.patches_, "sources": self.sources_, "calibration_rows": self.calibration_rows_})
+                 "calibration_method": self.calibration_method_}
+        arrays = {"patches": self.patches_, "sources": self.sources_}
+        if self.fold_starts_ is None:
+            arrays["calibration_rows"] = self.calibration_rows_
+        else:
+            arrays["fold_starts"] = self.fold_starts_
+        return state, arrays
 
     def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "PatchKNNDetector":
         self._check_params()
@@ -344,18 +407,41 @@ class PatchKNNDetector(Detector):
             raise OddlingError("patch detector `patches` hold NaN or infinite values")
         self.patches_ = np.ascontiguousarray(patches, dtype=np.float32)
         self.sources_ = sources.astype(np.int64)
-        self.calibration_rows_ = np.asarray(arrays.get("calibration_rows", np.zeros(0, np.int64)), dtype=np.int64)
+        self.fold_starts_ = self._check_fold_starts(arrays.get("fold_starts"), len(patches))
+        if self.fold_starts_ is None:     # a bank written with split calibration
+            self.calibration_rows_ = np.asarray(arrays.get("calibration_rows", np.zeros(0, np.int64)), dtype=np.int64)
         try:
             self.n_patches_ = int(state["n_patches"])
             self.grid_ = int(state["grid"])
         except (KeyError, TypeError, ValueError) as exc:
             raise OddlingError(f"patch detector state lacks a valid {exc}") from exc
-        self.calibration_method_ = str(state.get("calibration_method", SPLIT_CALIBRATION))
+        default = SPLIT_CALIBRATION if self.fold_starts_ is None else cross_conformal_method(len(self.fold_starts_) - 1)
+        self.calibration_method_ = str(state.get("calibration_method", default))
         return self
 
+    @staticmethod
+    def _check_fold_starts(starts, n_patches: int) -> np.ndarray | None:
+        if starts is None:
+            return None
+        starts = np.asarray(starts)
+        if (starts.ndim != 1 or len(starts) < 3 or not np.issubdtype(starts.dtype, np.integer) or starts[0] != 0
+                or starts[-1] != n_patches or np.any(np.diff(starts) <= 0)):
+            raise OddlingError(f"patch detector `fold_starts` must rise from 0 to {n_patches} (one step per fold, "
+                               "at least 2 folds)")
+        return starts.astype(np.int64)
+
     def describe_score(self) -> str:
+        if getattr(self, "fold_starts_", None) is None and hasattr(self, "patches_"):
+            return ("largest distance (Euclidean, in feature units) from any location of the image to its nearest "
+                    "reference patch; the map shows it per location")
         return ("largest distance (Euclidean, in feature units) from any location of the image to its nearest "
-                "reference patch; the map shows it per location")
+                "reference patch, averaged over the fold models (each the coreset of all references but one fold); "
+                "the map shows the distance per location")
+
+
+def cross_conformal_method(n_folds: int) -> str:
+    return (f"{n_folds}-fold cross-conformal: each reference scored against the coreset of the other folds (copies "
+            f"of a file kept in one fold); a new image's score is the mean over those {n_folds} fold models")
 
 
 SPLIT_CALIBRATION = ("split conformal: a seeded share of the references held out and scored against the coreset "

@@ -11,7 +11,7 @@ import numbers
 
 import numpy as np
 
-from oddling.detectors.base import CROSS_CONFORMAL, CrossConformalDetector
+from oddling.detectors.base import CrossConformalDetector
 from oddling.errors import OddlingError
 
 ORTHONORMAL_TOLERANCE = 1e-6   # for components read back from a bank
@@ -88,6 +88,7 @@ class PCADetector(CrossConformalDetector):
         _, singular_values, vt = np.linalg.svd(x - self.mean_, full_matrices=False)
         self.n_components_ = components_for_variance(singular_values, variance)
         self.components_ = np.ascontiguousarray(vt[:self.n_components_])
+        self.n_features_in_ = int(x.shape[1])
         return self
 
     def _score_model(self, features: np.ndarray) -> np.ndarray:
@@ -96,11 +97,10 @@ class PCADetector(CrossConformalDetector):
         residual = centred - (centred @ self.components_.T) @ self.components_
         return np.einsum("ij,ij->i", residual, residual)
 
-    def state(self) -> tuple[dict, dict[str, np.ndarray]]:
-        return ({"n_components": self.n_components_, "calibration_method": self.calibration_method_},
-                {"mean": self.mean_, "components": self.components_})
+    def _model_state(self) -> tuple[dict, dict[str, np.ndarray]]:
+        return {"n_components": self.n_components_}, {"mean": self.mean_, "components": self.components_}
 
-    def load_state(self, state: dict, arrays: dict[str, np.ndarray]) -> "PCADetector":
+    def _load_model(self, state: dict, arrays: dict[str, np.ndarray]) -> "PCADetector":
         self._check_variance()
         mean, components = arrays.get("mean"), arrays.get("components")
         if mean is None or components is None:
@@ -120,7 +120,6 @@ class PCADetector(CrossConformalDetector):
         if not np.allclose(components @ components.T, np.eye(len(components)), rtol=0.0, atol=ORTHONORMAL_TOLERANCE):
             raise OddlingError("PCA state: components are not orthonormal")
         self.mean_, self.components_, self.n_components_ = mean, components, len(components)
-        self.calibration_method_ = str(state.get("calibration_method", CROSS_CONFORMAL))
         self.n_features_in_ = len(mean)
         return self
 

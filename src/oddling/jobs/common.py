@@ -90,26 +90,30 @@ def plural(n: int, word: str, many: str | None = None) -> str:
     return f"{n} {word if n == 1 else (many or word + 's')}"
 
 
-def supported_rate_text(n: int) -> str:
+def supported_rate_text(n: int, guarantee=None) -> str:
     """What a calibration set of n scores can do, in words people can act on."""
-    lowest = smallest_supported_rate(n)
+    lowest = smallest_supported_rate(n, guarantee)
     return f"{n} calibration scores support target false-alarm rates >= {math.ceil(lowest * 1000) / 1000:g}"
 
 
-def warn_if_few_calibration(n: int, target_fpr: float, stacklevel: int = 3) -> None:
-    needed = min_calibration_size(target_fpr)
+def warn_if_few_calibration(threshold, stacklevel: int = 3) -> None:
+    """OddlingWarning when a bank's calibration is too small for its rate: nothing can be flagged,
+    or only images above nearly every calibration score."""
+    n, target_fpr, guarantee = threshold.n, threshold.target_fpr, threshold.guarantee
+    needed = min_calibration_size(target_fpr, guarantee)
     if n >= max(needed, round(1 / target_fpr)):
         return
     if n < needed:
-        advice = (f"; at {target_fpr} no image can be flagged at all: refit with --target-fpr "
-                  f"{_suggest_rate(n)} or add references (about {needed + 1} or more)")
+        advice = (f"; at {target_fpr} no image can be flagged at all ({threshold.support_text()}): refit with "
+                  f"--target-fpr {_suggest_rate(n, guarantee)} or with more references (about {needed} calibration "
+                  "scores or more)")
     else:
-        advice = f"; about {round(1 / target_fpr)} or more make the rate mean much"
-    warnings.warn(supported_rate_text(n) + advice, OddlingWarning, stacklevel=stacklevel)
+        advice = f"; about {round(1 / target_fpr)} or more calibration scores make the rate mean much"
+    warnings.warn(supported_rate_text(n, guarantee) + advice, OddlingWarning, stacklevel=stacklevel)
 
 
-def _suggest_rate(n: int) -> str:
-    lowest = smallest_supported_rate(n)
+def _suggest_rate(n: int, guarantee=None) -> str:
+    lowest = smallest_supported_rate(n, guarantee)
     for rate in (0.01, 0.02, 0.05, 0.1, 0.2, 0.5):
         if rate >= 2 * lowest:
             return f"{rate:g}"

@@ -13,7 +13,7 @@ from oddling.bank.store import Bank, save_bank
 from oddling.bank.vectors import check_dtype, check_float16
 from oddling.data.health import STATS, fit_fences
 from oddling.detectors import DEFAULT_DETECTOR, make_detector
-from oddling.detectors.conformal import ConformalThreshold
+from oddling.detectors.conformal import DEFAULT_RATES, MARGINAL, ConformalThreshold, Guarantee, default_rate
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
@@ -29,11 +29,57 @@ def fences_from_table(table: np.ndarray) -> dict:
     return fit_fences([dict(zip(STATS, row)) for row in table.tolist()])
 
 
-def calibration_record(detector, target_fpr: float) -> dict:
-    threshold = ConformalThreshold(detector.calibration_scores_, target_fpr)
-    warn_if_few_calibration(threshold.n, target_fpr, stacklevel=4)
-    return {"method": detector.describe_calibration(), "n": threshold.n, "target_fpr": target_fpr,
-            "cutoff": json_number(threshold.cutoff, 12), "rule": RULE}
+def make_guarantee(guarantee: str = MARGINAL, confidence: float | None = None) -> Guarantee:
+    """The bank's guarantee from the user's words; a confidence without "confident" is a mistake."""
+    if confidence is not None and guarantee != "confident":
+        raise OddlingError("--confidence applies to --guarantee confident")
+    try:
+        return Guarantee(guarantee, confidence)
+    except ValueError as exc:
+        raise OddlingError(str(exc)) from exc
+
+
+def resolve_rate(calibration_scores: np.ndarray, target_fpr: float | None, guarantee: Guarantee,
+                 allow_no_cutoff: bool = False) -> tuple[float, str | None]:
+    """(the bank's target rate, a note for the summary or None).
+
+    No rate asked for: the first of DEFAULT_RATES the calibration supports, and the note says why
+    when it is not the first. A rate asked for (or none supported) that cannot flag anything is
+    an OddlingError with the numbers, unless `allow_no_cutoff`: then the bank is written without
+    a cutoff and the note says so (and every gate refuses it later).
+    """
+    n = len(calibration_scores)
+    asked = target_fpr
+    if target_fpr is None:
+        target_fpr = default_rate(n, guarantee) or DEFAULT_RATES[-1]
+    threshold = ConformalThreshold(calibration_scores, target_fpr, guarantee)
+    if threshold.can_flag:
+        if asked is None and target_fpr != DEFAULT_RATES[0]:
+            first = ConformalThreshold(calibration_scores, DEFAULT_RATES[0], guarantee)
+            return target_fpr, f"target false-alarm rate {target_fpr:g}: {first.support_text()}"
+        return target_fpr, None
+    lowest = guarantee.smallest_supported_rate(n)
+    what = (f"target false-alarm rate {target_fpr:g} can flag nothing" if asked is not None else
+            f"no default target false-alarm rate ({', '.join(f'{r:g}' for r in DEFAULT_RATES)}) can flag anything")
+    problem = (f"{what} with this bank: {threshold.support_text()}"
+               + (f" (it supports rates >= {lowest:.3g})" if lowest < 1 else ""))
+    if not allow_no_cutoff:
+        raise OddlingError(f"{problem}. Add references, ask for a higher --target-fpr, or pass --allow-no-cutoff "
+                           "to write a bank that flags nothing")
+    return target_fpr, (f"no cutoff: {problem}; this bank flags nothing, and --fail-on-flagged, watch and serve "
+                        "refuse it")
+
+
+def calibration_record(detector, target_fpr: float, guarantee: Guarantee | None = None,
+                       note: str | None = None) -> dict:
+    guarantee = guarantee or Guarantee()
+    threshold = ConformalThreshold(detector.calibration_scores_, target_fpr, guarantee)
+    if threshold.can_flag:
+        warn_if_few_calibration(threshold, stacklevel=4)
+    record = {"method": detector.describe_calibration(), "n": threshold.n, "target_fpr": target_fpr,
+              "cutoff": json_number(threshold.cutoff, 12), "rule": RULE} | guarantee.to_dict()
+    record["promise"] = threshold.describe() if threshold.can_flag else "none: this bank cannot flag at its rate"
+    return record | ({"note": note} if note else {})
 
 
 def now_text() -> str:
@@ -87,9 +133,13 @@ def check_vector_dtype(vector_dtype: str, spec: RepresentationSpec, detector) ->
     return vector_dtype
 
 
-def build_bank(embedded, representation, detector, target_fpr: float, reference_dir: Path,
-               vector_dtype: str = "float32") -> Bank:
+def build_bank(embedded, representation, detector, target_fpr: float | None, reference_dir: Path,
+               vector_dtype: str = "float32", guarantee: Guarantee | None = None,
+               allow_no_cutoff: bool = False) -> Bank:
     """Fit the detector on embedded references and assemble the bank (not saved).
+
+    target_fpr None: the first of DEFAULT_RATES the calibration supports (`resolve_rate`, which
+    also refuses a rate that cannot flag unless `allow_no_cutoff`).
 
     vector_dtype "float16": the float16 rounding is checked first (`check_float16`, OddlingError
     when it moves scores by more than its tolerance), then the detector is fitted on the
@@ -105,6 +155,8 @@ def build_bank(embedded, representation, detector, target_fpr: float, reference_
         detector.fit(features.astype(np.float32), hashes)
     else:
         detector.fit(features, hashes)
+    guarantee = guarantee or Guarantee()
+    target_fpr, note = resolve_rate(detector.calibration_scores_, target_fpr, guarantee, allow_no_cutoff)
     references = [reference_entry(r.path, r.sha256, reference_dir / r.path) for r in usable]
     return Bank(
         representation=representation.fingerprint(),
@@ -112,7 +164,7 @@ def build_bank(embedded, representation, detector, target_fpr: float, reference_
         references=references,
         features=features if representation.spec.feature_kind == "vector" else None,
         calibration_scores=np.asarray(detector.calibration_scores_, dtype=np.float64),
-        calibration=calibration_record(detector, target_fpr),
+        calibration=calibration_record(detector, target_fpr, guarantee, note),
         reference_root=str(reference_dir.resolve()),
         tool_version=__version__,
         created=now_text(),
@@ -133,7 +185,10 @@ def fit(
     params: dict | None = None,
     backbone: str | None = None,
     k: int | None = None,
-    target_fpr: float = 0.01,
+    target_fpr: float | None = None,
+    guarantee: str = MARGINAL,
+    confidence: float | None = None,
+    allow_no_cutoff: bool = False,
     force: bool = False,
     vector_dtype: str = "float32",
     options: RunOptions | None = None,
@@ -147,6 +202,12 @@ def fit(
     params={"k": k} of the kNN detector. `vector_dtype` "float16" stores the reference vectors at
     half the size, after checking that this moves kNN scores by at most 1e-3 (see
     `oddling.bank.vectors`; the knn detector only).
+
+    `target_fpr` None (the default) takes the first of 0.01, 0.02, 0.05, 0.1 the calibration
+    supports; a rate given that cannot flag anything is refused (OddlingError) unless
+    `allow_no_cutoff`. `guarantee` "marginal" holds the rate on average over reference sets;
+    "confident" holds it for this bank with probability `confidence` (default 0.9); see
+    `oddling.detectors.conformal`.
     """
     options = options or RunOptions()
     reference_dir = folder(reference_dir, "reference folder")
@@ -159,12 +220,14 @@ def fit(
     spec = resolve_representation(representation, backbone, detector)
     check_pairing(spec, model)
     vector_dtype = check_vector_dtype(vector_dtype, spec, model)
-    target_fpr = check_rate(target_fpr)
+    if target_fpr is not None:
+        target_fpr = check_rate(target_fpr)
+    promise = make_guarantee(guarantee, confidence)
     refuse_existing(bank_path, force=force)
     rep = load_representation(spec, options.cache_dir, options.runtime)
     exclude = (Path(bank_path),) if bank_path is not None else ()
     embedded = embed_folder(reference_dir, rep, options, "embedding references", exclude)
-    bank = build_bank(embedded, rep, model, target_fpr, reference_dir, vector_dtype)
+    bank = build_bank(embedded, rep, model, target_fpr, reference_dir, vector_dtype, promise, allow_no_cutoff)
     if bank_path is not None:
         save_bank(bank, bank_path, force=force)
     return bank

@@ -274,11 +274,14 @@ def bank_info(bank_path: str | os.PathLike) -> dict:
     bank = load_bank(bank_path)
     meta = bank.metadata()
     n_cal = len(bank.calibration_scores)
+    threshold = bank.threshold()
     return {key: meta[key] for key in ("format_version", "tool_version", "created", "representation", "detector",
                                        "calibration", "reference_root", "n_references")} | {
         "format_version": bank.format_version, "backbone": bank.backbone, "n_skipped": len(bank.skipped),
-        "path": str(bank.path), "lowest_supported_rate": smallest_supported_rate(n_cal),
-        "supported_rates": supported_rate_text(n_cal), "vector_dtype": bank.vector_dtype,
+        "path": str(bank.path), "lowest_supported_rate": smallest_supported_rate(n_cal, bank.guarantee),
+        "supported_rates": supported_rate_text(n_cal, bank.guarantee), "vector_dtype": bank.vector_dtype,
+        "guarantee": bank.guarantee.kind, "can_flag": threshold.can_flag,
+        "promise": threshold.describe() if threshold.can_flag else f"none: {threshold.support_text()}",
         "vector_check": bank.vector_check}
 
 

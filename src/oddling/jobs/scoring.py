@@ -20,6 +20,18 @@ def as_bank(bank: Bank | str | os.PathLike) -> Bank:
     return bank if isinstance(bank, Bank) else load_bank(bank)
 
 
+def require_flagging(bank: Bank, target_fpr: float | None, gate: str):
+    """The bank's threshold, or an OddlingError naming the gate when it cannot flag anything at the
+    rate: a gate built on it would pass every defect."""
+    threshold = bank.threshold(target_fpr)
+    if not threshold.can_flag:
+        where = f" {bank.path}" if bank.path else ""
+        raise OddlingError(f"{gate} needs a bank that can flag, and bank{where} cannot at target false-alarm rate "
+                           f"{threshold.target_fpr:g}: {threshold.support_text()}. Refit it with more references or "
+                           "a higher --target-fpr, or give a higher --target-fpr here")
+    return threshold
+
+
 @dataclass
 class ScoreResult:
     """Scored files, sorted highest score first; unreadable files at the end with their status."""
@@ -36,6 +48,7 @@ class ScoreResult:
 
     def summary(self) -> dict:
         scores = [r.score for r in self.scored]
+        threshold = self.bank.threshold(self.target_fpr)
         return {
             "bank": str(self.bank.path) if self.bank.path else None,
             "backbone": self.bank.backbone["id"],
@@ -48,7 +61,11 @@ class ScoreResult:
             "n_skipped": len(self.rows) - len(scores),
             "n_flagged": sum(bool(r.flagged) for r in self.rows),
             "target_fpr": self.target_fpr,
+            "guarantee": threshold.describe() if threshold.can_flag else f"none: {threshold.support_text()}",
             "cutoff": json_number(self.cutoff),
+            # p-values cannot go below this with this bank; images above every calibration score share it
+            "p_value_floor": json_number(threshold.p_floor),
+            "n_at_p_value_floor": sum(r.above_all is not None for r in self.scored),
             "score_min": json_number(min(scores)) if scores else None,
             "score_max": json_number(max(scores)) if scores else None,
         }
@@ -138,7 +155,8 @@ def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None,
     threshold = bank.threshold(target_fpr)
     if not embedded.ok_records:
         return [ScoreRow(path=r.path, status=r.status, sha256=r.sha256) for r in embedded.records], threshold.cutoff
-    scored, p_values, flagged, _ = score_features(bank, embedded.embeddings, target_fpr, progress)
+    scored, p_values, flagged, threshold = score_features(bank, embedded.embeddings, target_fpr, progress)
+    above_all = threshold.above_all(scored.scores)
     rows = []
     for rec in embedded.records:
         row = ScoreRow(path=rec.path, status=rec.status, sha256=rec.sha256, note=rec.note)
@@ -148,6 +166,7 @@ def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None,
             row.score = float(scored.scores[i])
             row.p_value = float(p_values[i])
             row.flagged = bool(flagged[i])
+            row.above_all = threshold.n if above_all[i] else None
             if scored.neighbour_rows is not None:
                 row.nearest = [bank.references[j]["path"] for j in scored.neighbour_rows[i]]
                 row.nearest_distances = [float(d) for d in scored.neighbour_distances[i]]
@@ -173,6 +192,7 @@ def score(
     target_fpr: float | None = None,
     backbone: str | None = None,
     allow_empty: bool = False,
+    require_cutoff: bool = False,
     options: RunOptions | None = None,
 ) -> ScoreResult:
     """Score every file under `incoming_dir` against the bank.
@@ -181,14 +201,18 @@ def score(
     says what it measures); p_value = conformal p-value against the bank's calibration scores;
     flagged = p_value <= target_fpr (the bank's rate unless overridden). A folder without one
     usable image is an OddlingError ("no images found in ...") unless `allow_empty` (for
-    pipelines: then the rows say why each file has no score).
+    pipelines: then the rows say why each file has no score). `require_cutoff` (what
+    `--fail-on-flagged` asks): a bank that cannot flag at the rate is an OddlingError before any
+    work, since a gate that cannot close must not report that nothing was flagged.
     """
     options = options or RunOptions()
     incoming_dir = folder(incoming_dir, "incoming folder")
     bank = as_bank(bank)
     if target_fpr is not None:
         target_fpr = check_rate(target_fpr)
-    warn_if_few_calibration(len(bank.calibration_scores), target_fpr or bank.target_fpr)
+    if require_cutoff:
+        require_flagging(bank, target_fpr, "--fail-on-flagged")
+    warn_if_few_calibration(bank.threshold(target_fpr))
     if backbone is not None and backbone != bank.backbone["id"]:
         raise OddlingError(f"bank {bank.path or ''} was made with {bank.backbone['id']!r}, not {backbone!r}; "
                            "scores from different backbones cannot be compared")

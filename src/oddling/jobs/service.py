@@ -445,6 +445,7 @@ def row_json(row, name: str) -> dict:
         "neighbours": [{"reference": p, "distance": d} for p, d in zip(row.nearest, row.nearest_distances)],
         "health": row.health or None,
         "status": row.status,
+        "note": row.remarks or None,
     }
 
 
@@ -465,10 +466,11 @@ def serve_app(bank, *, log=None, token: str | None = None, config: ServiceConfig
     from starlette.exceptions import HTTPException as StarletteHTTPException
 
     from oddling import __version__
-    from oddling.jobs.scoring import as_bank
+    from oddling.jobs.scoring import as_bank, require_flagging
     from oddling.logbook.store import default_log_path
 
     bank = as_bank(bank)
+    require_flagging(bank, None, "serve")
     config = config or ServiceConfig()
     for key, value in settings.items():
         if not hasattr(config, key):

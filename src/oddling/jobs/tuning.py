@@ -58,6 +58,7 @@ class Trial:
     auroc_ci95: list | None = None
     auroc_se: float | None = None       # DeLong standard error, for the tie band
     ms_per_image: float | None = None   # features + scoring, per image of the labelled folder
+    supports_target: bool | None = None  # whether its bank can flag anything at the target rate
     status: str = "ok"
     bank: object = field(default=None, repr=False)
     scores: np.ndarray | None = field(default=None, repr=False)     # of the readable labelled images
@@ -66,7 +67,8 @@ class Trial:
     def to_dict(self) -> dict:
         return {"representation": self.representation, "detector": self.detector, "params": self.params,
                 "auroc": json_number(self.auroc), "auroc_ci95": [json_number(v) for v in self.auroc_ci95 or []] or None,
-                "ms_per_image": json_number(self.ms_per_image, 2), "status": self.status}
+                "ms_per_image": json_number(self.ms_per_image, 2), "supports_target": self.supports_target,
+                "status": self.status}
 
     def fit_command(self) -> str:
         params = " ".join(f"--param {k}={json.dumps(v)}" for k, v in self.params.items())
@@ -87,8 +89,13 @@ class TuneResult:
     labels: np.ndarray | None = field(default=None, repr=False)   # of the labelled images, in discovery order
 
     def summary(self) -> dict:
+        calibration = self.chosen.bank.calibration if self.chosen.bank is not None else {}
         return {
-            "chosen": self.chosen.to_dict() | {"fit_command": self.chosen.fit_command()},
+            "chosen": self.chosen.to_dict() | {"fit_command": self.chosen.fit_command(),
+                                               "target_fpr": calibration.get("target_fpr"),
+                                               "cutoff": calibration.get("cutoff"),
+                                               "promise": calibration.get("promise"),
+                                               "rate_note": calibration.get("note")},
             "holdout_auroc": json_number(self.holdout_auroc),
             "holdout_auroc_ci95": [json_number(v) for v in self.holdout_auroc_ci95] if self.holdout_auroc_ci95 else None,
             "leaderboard": [t.to_dict() for t in self.leaderboard],
@@ -141,11 +148,16 @@ def _uncached_ms_per_image(root: Path, paths: list[Path], representation, option
 
 
 def rank(trials: list[Trial]) -> list[Trial]:
-    """Best AUROC first; among those within the tie band of the best, the cheapest first; failures last."""
+    """Best AUROC first; among those within the tie band of the best, the cheapest first; failures last.
+    Configurations whose bank cannot flag at the target rate come after every one that can: a bank
+    that flags nothing is no choice while another can flag."""
     done = [t for t in trials if t.auroc is not None]
     rest = [t for t in trials if t.auroc is None]
     if not done:
         return rest
+    able = [t for t in done if t.supports_target is not False]
+    if able and len(able) < len(done):
+        return rank(able) + rank([t for t in done if t.supports_target is False]) + rest
     top = max(done, key=lambda t: t.auroc)
     best, band = top.auroc, max(TIE, top.auroc_se or 0.0)
     ties = sorted((t for t in done if t.auroc >= best - band), key=lambda t: (t.ms_per_image or 0.0, -t.auroc))
@@ -180,7 +192,10 @@ def tune(
     representations: list[str] | None = None,
     grid: list[tuple[str, str, dict]] | None = None,
     budget_minutes: float | None = None,
-    target_fpr: float = 0.01,
+    target_fpr: float | None = None,
+    guarantee: str = "marginal",
+    confidence: float | None = None,
+    allow_no_cutoff: bool = False,
     seed: int = 0,
     force: bool = False,
     options: RunOptions | None = None,
@@ -189,13 +204,18 @@ def tune(
     images best, fitted on all of `reference_dir`, as the bank at `bank_path`.
 
     Labels come from `test_dir` as `evaluate` reads them. See the module docstring for how the
-    choice is kept honest (`holdout_auroc`).
+    choice is kept honest (`holdout_auroc`). The target rate, guarantee and `allow_no_cutoff` mean
+    what they mean for `fit`: every configuration's bank is calibrated so; those that cannot flag at
+    the rate are marked (`supports_target`) and not chosen while another can; a chosen bank that
+    cannot flag is refused unless `allow_no_cutoff`.
     """
-    from oddling.jobs.fitting import build_bank, check_pairing
+    from oddling.jobs.fitting import build_bank, check_pairing, make_guarantee, resolve_rate
 
     options = options or RunOptions()
     test_dir, reference_dir = folder(test_dir, "test folder"), folder(reference_dir, "reference folder")
-    target_fpr = check_rate(target_fpr)
+    if target_fpr is not None:
+        target_fpr = check_rate(target_fpr)
+    promise = make_guarantee(guarantee, confidence)
     if budget_minutes is not None and budget_minutes <= 0:
         raise OddlingError(f"budget must be > 0 minutes, got: {budget_minutes}")
     files = {}
@@ -245,7 +265,9 @@ def tune(
             for name, params in configs:
                 trial = Trial(rep_id, name, params)
                 try:
-                    bank = build_bank(refs, representation, make_detector(name, params), target_fpr, reference_dir)
+                    bank = build_bank(refs, representation, make_detector(name, params), target_fpr, reference_dir,
+                                      guarantee=promise, allow_no_cutoff=True)
+                    trial.supports_target = bank.threshold().can_flag
                     t0 = time.perf_counter()
                     scores = bank.detector.anomaly_score(test.embeddings).scores
                     trial.ms_per_image = embed_ms + 1000 * (time.perf_counter() - t0) / max(1, len(scores))
@@ -264,6 +286,8 @@ def tune(
     if chosen.auroc is None:
         raise OddlingError("no configuration could be fitted and scored; first failure: "
                            + next((t.status for t in trials if t.status != "ok"), "none"))
+    # The chosen bank keeps the promise asked for, or says why it cannot (as fit would).
+    resolve_rate(chosen.bank.calibration_scores, target_fpr, promise, allow_no_cutoff)
     held = ~choose
     holdout, holdout_ci = _holdout(chosen, labels, held)
     result = TuneResult(chosen, board, holdout, holdout_ci,

@@ -49,7 +49,7 @@ class Watcher:
                  drift_permutations: int = 500, target_fpr: float | None = None, options: RunOptions | None = None,
                  echo=_echo):
         from oddling.jobs.common import load_bank_representation
-        from oddling.jobs.scoring import as_bank
+        from oddling.jobs.scoring import as_bank, require_flagging
         from oddling.logbook.records import _open_cache, new_request_id
         from oddling.logbook.store import bank_fingerprint, default_log_path, ScoreLog
 
@@ -64,6 +64,7 @@ class Watcher:
         self.drift_every, self.drift_window, self.drift_permutations = int(drift_every), int(drift_window), int(
             drift_permutations)
         self.target_fpr = check_rate(target_fpr) if target_fpr is not None else None
+        require_flagging(self.bank, self.target_fpr, "watch")
         self.options = options or RunOptions(progress=False)
         self.echo = echo
         self.move_flagged = Path(move_flagged) if move_flagged is not None else None

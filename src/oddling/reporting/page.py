@@ -519,11 +519,19 @@ class _Page:
             f'<p class="rank">#{rank}</p><h3 class="name" title="{_path(row.path)}">{_path(name)}</h3>'
             f'{folder}{flag}'
             f'<dl class="numbers"><div><dt>Score</dt><dd>{_num(row.score)}</dd></div>'
-            f"<div><dt>p-value</dt><dd>{_p(row.p_value)}</dd></div>{truth}</dl></div></div>{heatmap}"
+            f"<div><dt>p-value</dt><dd>{_p(row.p_value)}{self._floor(row)}</dd></div>{truth}</dl></div></div>{heatmap}"
             + (f'<p class="refs-title">{self._refs_title}</p><ol class="refs">{"".join(refs)}</ol>' if refs else "") +
             f'<div class="decide" role="group" aria-label="Decision for {_path(name)}">{buttons}</div>'
             f'<p class="decision-state">No decision yet</p></li>'
         )
+
+    @staticmethod
+    def _floor(row) -> str:
+        """A p-value at its floor says so: it cannot go lower with this bank; the score still ranks."""
+        if row.above_all is None:
+            return ""
+        return (f' <span class="floor" title="The lowest p-value this bank can give; order such images by score">'
+                f"(above all {row.above_all} calibration scores)</span>")
 
     def _unreadable(self) -> str:
         if not self.unreadable:

@@ -31,6 +31,16 @@ class ScoreRow:
     label: int | None = None     # evaluate only: 1 anomalous, 0 normal
     kind: str | None = None      # evaluate only: anomaly kind (subfolder name) or "normal"
     anomaly_grid: object = None  # local mode: (G, G) nearest-patch distances; see ScoreResult.anomaly_map
+    above_all: int | None = None  # N when the score is above all N calibration scores (p at its floor)
+
+    @property
+    def remarks(self) -> str:
+        """What the status column adds to "ok": the frame note, and that the p-value is at its floor
+        (it cannot go lower with this bank, so only the score still ranks such images)."""
+        parts = [self.note] if self.note else []
+        if self.above_all is not None:
+            parts.append(f"above all {self.above_all} calibration scores")
+        return "; ".join(parts)
 
 
 def sort_rows(rows: list[ScoreRow]) -> list[ScoreRow]:
@@ -92,7 +102,7 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
             csv_text(r.nearest[0]) if r.nearest else "",
             _num(r.nearest_distances[0]) if r.nearest_distances else "",
             csv_text(r.health),
-            csv_text(f"{r.status} ({r.note})" if r.note else r.status),
+            csv_text(f"{r.status} ({r.remarks})" if r.remarks else r.status),
         ]
         if with_labels:
             line += ["" if r.label is None else ("anomalous" if r.label else "normal"), csv_text(r.kind or "")]

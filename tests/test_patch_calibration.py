@@ -1,0 +1,75 @@
+"""The patch detector's cross-conformal calibration, against brute-force nearest patches (SciPy's
+`cdist`, the outside reference) on small random patch grids.
+
+Fold model j is the coreset of every fold but j (`fit_fold_bank`); a reference of fold j is scored
+by fold model j alone, a new image by every fold model, and its score is their mean (Vovk,
+"Cross-conformal predictors", 2015, for the calibration scheme).
+"""
+import numpy as np
+import pytest
+from scipy.spatial.distance import cdist
+
+from oddling.detectors.base import distinct_groups, group_folds
+from oddling.detectors.patch import PatchKNNDetector
+from oddling.errors import OddlingError
+
+N, LOCATIONS, CHANNELS = 30, 16, 6
+
+
+def grids(rng, n):
+    return rng.standard_normal((n, LOCATIONS, CHANNELS)).astype(np.float32)
+
+
+def fold_model(det, j):
+    """The patches of fold model j: every fold's coreset but fold j's."""
+    start, end = det.fold_starts_[j], det.fold_starts_[j + 1]
+    return np.concatenate([det.patches_[:start], det.patches_[end:]])
+
+
+def worst_location(queries, patches):
+    return cdist(queries.astype(np.float64), patches.astype(np.float64)).min(axis=1).max()
+
+
+def test_every_reference_is_calibrated_by_the_fold_model_that_never_saw_it():
+    rng = np.random.default_rng(0)
+    x = grids(rng, N)
+    det = PatchKNNDetector(coreset=0.5).fit(x)
+    folds = group_folds(distinct_groups(None, N), 5, 0)
+    assert len(det.calibration_scores_) == N            # n references, n calibration scores
+    for i in range(N):
+        # SciPy's cdist: the largest nearest-patch distance of reference i to fold model f(i)
+        expected = worst_location(x[i], fold_model(det, folds[i]))
+        assert det.calibration_scores_[i] == pytest.approx(expected, rel=1e-5)
+        assert not np.isin(det.sources_[det.fold_starts_[folds[i]]:det.fold_starts_[folds[i] + 1]],
+                           np.flatnonzero(folds != folds[i])).any()
+
+
+def test_a_new_image_scores_the_mean_of_the_fold_models_scores():
+    rng = np.random.default_rng(1)
+    x, y = grids(rng, N), grids(rng, 8) * 1.3
+    det = PatchKNNDetector(coreset=0.5).fit(x)
+    expected = [np.mean([worst_location(image, fold_model(det, j)) for j in range(5)]) for image in y]
+    got = det.anomaly_score(y).scores
+    # One search of the whole coreset gives every fold model's nearest patch, unless all of the
+    # nearest FOLD_SEARCH come from one fold: then the score is a lower bound (never higher).
+    assert np.all(got <= np.array(expected) * (1 + 1e-5))
+    np.testing.assert_allclose(got, expected, rtol=2e-2)
+
+
+def test_copies_of_one_file_stay_in_one_fold():
+    rng = np.random.default_rng(2)
+    x = grids(rng, N)
+    x[1] = x[0]
+    groups = np.array([f"h{i}" for i in range(N)])
+    groups[1] = groups[0]
+    det = PatchKNNDetector(coreset=1.0).fit(x, groups)
+    # its copy is in the same fold, so fold model f(0) holds neither: the score is not 0
+    assert det.calibration_scores_[0] > 0.5 and det.calibration_scores_[1] == det.calibration_scores_[0]
+
+
+def test_too_few_distinct_references_for_the_folds_is_a_clear_error():
+    x = grids(np.random.default_rng(3), 4)
+    with pytest.raises(OddlingError, match="at least 5 distinct references"):
+        PatchKNNDetector().fit(x)
+    with pytest.raises(OddlingError, match="folds must be an integer >= 2"):
+        PatchKNNDetector(folds=1).fit(x)
