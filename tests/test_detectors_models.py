@@ -58,6 +58,21 @@ def check_folds_against(det, x, y, reference_scores):
     rel_close(det.anomaly_score(y).scores, np.mean(expected, axis=0))
 
 
+@pytest.mark.parametrize("name", ["gaussian", "pca", "iforest"])
+def test_with_content_hashes_each_image_is_scored_by_one_fold_model(name):
+    from oddling.detectors.base import fold_of_content
+
+    rng = np.random.default_rng(12)
+    x, y = anisotropic(rng, 80, 6), anisotropic(rng, 40, 6) * 1.2
+    hashes = np.array([f"{i:064x}" for i in range(40)])
+    det = make_detector(name).fit(x)
+    chosen = fold_of_content(hashes, N_FOLDS)
+    assert set(chosen.tolist()) == set(range(N_FOLDS))            # the models share the images
+    expected = [det.models_[k]._score_model(y[i:i + 1])[0] for i, k in enumerate(chosen)]
+    np.testing.assert_allclose(det.anomaly_score(y, hashes).scores, expected, rtol=1e-12)
+    np.testing.assert_array_equal(det.score_samples(y, hashes), det.anomaly_score(y, hashes).scores)
+
+
 # --- Gaussian --------------------------------------------------------------------------------
 
 @pytest.mark.parametrize("n, d", [(120, 20), (40, 300)])   # n > d and n < d
@@ -346,3 +361,19 @@ def test_identical_references_are_refused_by_the_gaussian_and_reduce_pca_to_the_
     det = PCADetector().fit(x)
     assert det.models_[0].n_components_ == 0   # no direction of variation: the residual is ||y - mean||^2
     np.testing.assert_allclose(det.anomaly_score(np.array([[1.0, 1.0, 1.0, 3.0]])).scores, [4.0])
+
+
+@pytest.mark.parametrize("name", DETECTORS)
+def test_a_state_written_before_fold_models_loads_as_one_refitted_model(name):
+    # Banks of earlier releases keep one model refitted on all references and its own arrays at
+    # the top level (no "folds"); they load and score as that model did.
+    rng = np.random.default_rng(13)
+    x, y = anisotropic(rng, 60, 8), anisotropic(rng, 20, 8)
+    single = make_detector(name).clone()._fit_model(x)
+    old_state, old_arrays = single._model_state()
+    old_state = old_state | {"calibration_method": "5-fold cross-conformal: each reference scored by the detector "
+                                                    "fitted without its fold (copies of a file kept in one fold)"}
+    loaded = make_detector(name).load_state(*bank_round_trip(old_state, old_arrays))
+    np.testing.assert_array_equal(loaded.anomaly_score(y, np.array([str(i) for i in range(20)])).scores,
+                                  single._score_model(y))
+    assert loaded.state()[0] == json.loads(json.dumps(old_state)) and set(loaded.state()[1]) == set(old_arrays)

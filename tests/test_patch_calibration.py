@@ -73,3 +73,33 @@ def test_too_few_distinct_references_for_the_folds_is_a_clear_error():
         PatchKNNDetector().fit(x)
     with pytest.raises(OddlingError, match="folds must be an integer >= 2"):
         PatchKNNDetector(folds=1).fit(x)
+
+
+def test_with_content_hashes_each_new_image_is_scored_by_the_fold_model_its_content_picks():
+    from oddling.detectors.base import fold_of_content
+
+    rng = np.random.default_rng(4)
+    x, y = grids(rng, N), grids(rng, 10) * 1.3
+    hashes = np.array([f"new{i}" for i in range(10)])
+    det = PatchKNNDetector(coreset=0.5).fit(x)
+    chosen = fold_of_content(hashes, 5)
+    expected = [worst_location(image, fold_model(det, k)) for image, k in zip(y, chosen)]   # SciPy's cdist
+    got = det.anomaly_score(y, hashes)
+    assert np.all(got.scores <= np.array(expected) * (1 + 1e-5))        # a lower bound at worst
+    np.testing.assert_allclose(got.scores, expected, rtol=2e-2)
+    assert np.allclose(got.maps.reshape(10, -1).max(axis=1), got.scores)  # the map's worst spot is the score
+    np.testing.assert_array_equal(det.anomaly_score(y, hashes).scores, got.scores)   # the same model every time
+
+
+def test_a_bank_written_with_split_calibration_scores_as_before():
+    from oddling.detectors.patch import PatchIndex, score_patches
+
+    rng = np.random.default_rng(5)
+    patches, y = rng.standard_normal((40, CHANNELS)).astype(np.float32), grids(rng, 3)
+    state = {"n_patches": 400, "coreset_size": 40, "patch_dim": CHANNELS, "grid": 4, "size_mb": 0.0,
+             "calibration_method": "split conformal: a seeded share of the references held out"}
+    arrays = {"patches": patches, "sources": np.arange(40) % 10, "calibration_rows": np.array([10, 11])}
+    det = PatchKNNDetector().load_state(state, arrays)
+    expected = score_patches(PatchIndex(patches), arrays["sources"], y).scores
+    np.testing.assert_array_equal(det.anomaly_score(y, np.array(["a", "b", "c"])).scores, expected)
+    assert det.state()[1].keys() == arrays.keys()

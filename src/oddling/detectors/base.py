@@ -10,6 +10,7 @@ the CLI, the README and the review page show comes from the detector itself.
 """
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -52,7 +53,10 @@ class Detector:
     def fit(self, features: np.ndarray, groups: np.ndarray) -> "Detector":
         raise NotImplementedError
 
-    def anomaly_score(self, features: np.ndarray) -> Scores:
+    def anomaly_score(self, features: np.ndarray, groups: np.ndarray | None = None) -> Scores:
+        """Scores of new images, higher = more anomalous, with evidence where the method has it.
+        `groups`: the images' content hashes, where known; detectors with fold models use them to
+        pick each image's model (see `CrossConformalDetector`), the others ignore them."""
         raise NotImplementedError
 
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:
@@ -85,6 +89,10 @@ class Detector:
 
     def clone(self) -> "Detector":
         return type(self)(**self.get_params())
+
+    def score_samples(self, features: np.ndarray, groups: np.ndarray | None = None) -> np.ndarray:
+        """The scores alone, as an (n,) float64 array (scikit-learn's name; higher = more anomalous here)."""
+        return np.asarray(self.anomaly_score(features, groups).scores, dtype=np.float64)
 
     def describe_calibration(self) -> str:
         return getattr(self, "calibration_method_", "not fitted")
@@ -138,26 +146,38 @@ def cross_conformal_scores(detector: "CrossConformalDetector", features: np.ndar
     and Artificial Intelligence 2015): each reference is scored by a copy of the detector fitted
     without its fold, as a new image is scored by a detector that never saw it.
 
-    Returns (calibration scores, the K fold models). The fold models are kept: a new image's score
-    is the mean of theirs (`CrossConformalDetector.anomaly_score`), so it comes from models trained
-    on as many references as the ones that scored the calibration images. A single model refitted
-    on all references would score new images lower than its folds scored the references (it has seen
-    more), and the bank would flag far fewer than its rate promises.
+    Returns (calibration scores, the K fold models). The fold models are kept, and a new image is
+    scored by one of them (`fold_of_content`): so its score and a reference's come from models
+    fitted on as many references, in the same way. A single model refitted on all references
+    scores new normal images lower than its folds scored the references (it has seen more), and
+    the mean of the K models' scores varies less than one model's: either way the bank would flag
+    fewer than its rate promises (measured in benchmarks/CALIBRATION_RESULTS.md).
     """
+    from oddling.detectors.threads import blas_threads_for
+
     folds = group_folds(groups, n_folds, seed)
     scores = np.empty(len(features), dtype=np.float64)
     models = []
-    for fold in range(n_folds):
-        held = folds == fold
-        model = detector.clone()._fit_model(features[~held])
-        scores[held] = model._score_model(features[held])
-        models.append(model)
+    with blas_threads_for(features.shape, (features.shape[1], features.shape[1])):
+        for fold in range(n_folds):
+            held = folds == fold
+            model = detector.clone()._fit_model(features[~held])
+            scores[held] = model._score_model(features[held])
+            models.append(model)
     return scores, models
 
 
+def fold_of_content(groups, n_folds: int) -> np.ndarray:
+    """The fold model that scores each new image: from its content hash (the first 8 bytes of a
+    SHA-256 of the text, as an integer, mod K), so a file always meets the same model, on any machine,
+    and the models share the new images evenly."""
+    return np.array([int.from_bytes(hashlib.sha256(str(g).encode("utf-8", "surrogatepass")).digest()[:8], "big")
+                     % n_folds for g in np.asarray(groups).tolist()], dtype=np.int64)
+
+
 CROSS_CONFORMAL = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
-                   "fold (copies of a file kept in one fold); a new image's score is the mean of the "
-                   f"{N_FOLDS} fold models' scores")
+                   "fold (copies of a file kept in one fold); a new image is scored by one of the "
+                   f"{N_FOLDS} fold models, chosen by its content")
 # What banks written before the fold models were kept say: one model refitted on all references.
 REFIT_CROSS_CONFORMAL = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
                          "fold (copies of a file kept in one fold)")
@@ -166,8 +186,9 @@ FOLD_PREFIX = "fold"
 
 class CrossConformalDetector(Detector):
     """A detector whose model has no exact, cheap leave-one-out (Gaussian, PCA, isolation forest):
-    K fold models, each fitted without one fold of the references and calibrated on it; a new image
-    is scored by all K and gets the mean of their scores.
+    K fold models, each fitted without one fold of the references and calibrated on it. A new image
+    is scored by the fold model its content hash picks (`fold_of_content`); without hashes
+    (`groups` None) by the mean of all K, which flags a little less than the rate promises.
 
     Subclasses implement, for one model on validated (n, d) arrays: `_fit_model(features) -> self`
     (sets the model's fitted attributes), `_score_model(features) -> (n,) float64`,
@@ -184,16 +205,26 @@ class CrossConformalDetector(Detector):
         self.n_features_in_ = int(features.shape[1])
         return self
 
-    def anomaly_score(self, features: np.ndarray) -> Scores:
+    def anomaly_score(self, features: np.ndarray, groups: np.ndarray | None = None) -> Scores:
         check_fitted(self, "models_")
         features = check_features(features)
         if features.shape[1] != self.n_features_in_:
             raise OddlingError(f"features have {features.shape[1]} dimensions; the detector was fitted on "
                                f"{self.n_features_in_}")
-        total = np.zeros(len(features), dtype=np.float64)
-        for model in self.models_:
-            total += np.asarray(model._score_model(features), dtype=np.float64)
-        return Scores(total / len(self.models_))
+        from oddling.detectors.threads import blas_threads_for
+
+        scores = np.zeros(len(features), dtype=np.float64)
+        with blas_threads_for(features.shape, (features.shape[1], features.shape[1])):
+            if groups is None or len(self.models_) == 1:
+                for model in self.models_:
+                    scores += np.asarray(model._score_model(features), dtype=np.float64)
+                return Scores(scores / len(self.models_))
+            chosen = fold_of_content(distinct_groups(groups, len(features)), len(self.models_))
+            for k, model in enumerate(self.models_):
+                rows = chosen == k
+                if rows.any():
+                    scores[rows] = model._score_model(features[rows])
+        return Scores(scores)
 
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:
         check_fitted(self, "models_")

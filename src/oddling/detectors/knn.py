@@ -278,7 +278,7 @@ class KNNDetector(Detector):
             self.index_ = ExactCosineIndex(self.references_)
         return self.index_
 
-    def anomaly_score(self, features: np.ndarray) -> Scores:
+    def anomaly_score(self, features: np.ndarray, groups: np.ndarray | None = None) -> Scores:
         features = check_features(features)
         if len(features) == 0:
             return Scores(np.zeros(0), np.zeros((0, self.k), np.int64), np.zeros((0, self.k)))

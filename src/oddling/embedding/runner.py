@@ -46,6 +46,14 @@ class EmbeddedFiles:
     def ok_records(self) -> list[FileRecord]:
         return [r for r in self.records if r.row is not None]
 
+    @property
+    def row_hashes(self) -> np.ndarray:
+        """The content hash of each embedding row, in row order."""
+        hashes = np.empty(len(self.embeddings), dtype=object)
+        for r in self.ok_records:
+            hashes[r.row] = r.sha256
+        return hashes
+
     def health_of(self, record: FileRecord) -> dict[str, float]:
         return dict(zip(STATS, self.health[record.row].tolist()))
 

@@ -43,7 +43,7 @@ def drift(
     if n < 2:
         raise OddlingError(f"{incoming_dir} has {n} readable images; a shift test needs at least 2")
     mmd = mmd_permutation_test(embedded.embeddings, bank.features, n_permutations=n_permutations, seed=seed)
-    _, _, flagged, _ = score_features(bank, embedded.embeddings)
+    _, _, flagged, _ = score_features(bank, embedded.embeddings, groups=embedded.row_hashes)
     share = flagged_share_test(int(flagged.sum()), n, bank.target_fpr)
     shift = shift_verdict(mmd["p_value"], share["binomial_p_value"])
     result = {

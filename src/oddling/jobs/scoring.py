@@ -117,15 +117,17 @@ def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | N
 SCORE_CHUNK = 4096   # queries per detector call (as oddling.index.base.QUERY_CHUNK): bounds each call's work
 
 
-def score_features(bank: Bank, features: np.ndarray, target_fpr: float | None = None, progress: bool = False):
-    """(Scores, p-values, flags, threshold) of feature rows against the bank.
+def score_features(bank: Bank, features: np.ndarray, target_fpr: float | None = None, progress: bool = False,
+                   groups: np.ndarray | None = None):
+    """(Scores, p-values, flags, threshold) of feature rows against the bank. `groups`: the rows'
+    content hashes (detectors with fold models pick each image's model by them).
 
     Streamed: the detector scores `SCORE_CHUNK` rows at a time, with a progress bar on stderr
     when there is more than one chunk (and `progress`). Only the results (n x k neighbours) are
     kept; no call holds more than a chunk's search, never all queries x all references."""
     threshold = bank.threshold(target_fpr)
     if len(features) <= SCORE_CHUNK:
-        scored = bank.detector.anomaly_score(features)
+        scored = bank.detector.anomaly_score(features, groups)
     else:
         import sys
 
@@ -135,7 +137,8 @@ def score_features(bank: Bank, features: np.ndarray, target_fpr: float | None = 
         with tqdm(total=len(features), desc="scoring against the bank", unit="img", file=sys.stderr,
                   disable=not progress, leave=False) as bar:
             for start in range(0, len(features), SCORE_CHUNK):
-                parts.append(bank.detector.anomaly_score(features[start:start + SCORE_CHUNK]))
+                part_groups = None if groups is None else groups[start:start + SCORE_CHUNK]
+                parts.append(bank.detector.anomaly_score(features[start:start + SCORE_CHUNK], part_groups))
                 bar.update(len(parts[-1].scores))
         scored = join_scores(parts)
     return scored, threshold.p_values(scored.scores), threshold.flag(scored.scores), threshold
@@ -155,7 +158,8 @@ def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None,
     threshold = bank.threshold(target_fpr)
     if not embedded.ok_records:
         return [ScoreRow(path=r.path, status=r.status, sha256=r.sha256) for r in embedded.records], threshold.cutoff
-    scored, p_values, flagged, threshold = score_features(bank, embedded.embeddings, target_fpr, progress)
+    scored, p_values, flagged, threshold = score_features(bank, embedded.embeddings, target_fpr, progress,
+                                                          embedded.row_hashes)
     above_all = threshold.above_all(scored.scores)
     rows = []
     for rec in embedded.records:

@@ -269,7 +269,7 @@ def tune(
                                       guarantee=promise, allow_no_cutoff=True)
                     trial.supports_target = bank.threshold().can_flag
                     t0 = time.perf_counter()
-                    scores = bank.detector.anomaly_score(test.embeddings).scores
+                    scores = bank.detector.score_samples(test.embeddings, test.row_hashes)
                     trial.ms_per_image = embed_ms + 1000 * (time.perf_counter() - t0) / max(1, len(scores))
                     use = choose[readable]
                     trial.auroc, trial.auroc_ci95 = _auroc_with_ci(labels[readable][use], scores[use])
