@@ -1,8 +1,13 @@
 """Labels CSV: only the documented words (README: label `normal`/`anomaly` or `0`/`1`; `anomalous`
-as written in scores.csv), and what a table and a folder leave out. Label 1 = anomalous."""
-import pytest
+as written in scores.csv), and what a table and a folder leave out. Class folders: a normal label
+matches in any case; two folders differing only in case are an error. Label 1 = anomalous."""
+import json
 
-from oddling.data.labels import describe_label_summary, label_from_folder, label_summary, read_labels_csv
+import pytest
+from click.testing import CliRunner
+
+from oddling.data.labels import (class_folders, describe_label_summary, label_from_folder, label_summary,
+                                 read_labels_csv)
 from oddling.errors import OddlingError
 
 
@@ -102,3 +107,84 @@ def test_label_from_folder():
     assert label_from_folder("normal/a.png", ("normal",)) == (0, "normal")
     assert label_from_folder("scratch/a.png", ("normal",)) == (1, "scratch")
     assert label_from_folder("a.png", ("normal",)) is None
+
+
+def test_a_normal_label_matches_a_folder_in_any_case():
+    for folder in ("normal", "Normal", "NORMAL"):
+        assert label_from_folder(f"{folder}/a.png", ("normal",)) == (0, "normal")
+    assert label_from_folder("Crack/a.png", ("normal",)) == (1, "Crack")
+
+
+def test_a_folder_taken_as_normal_by_ignoring_case_gets_one_note():
+    normal, notes = class_folders(["Normal/a.png", "Normal/b.png", "crack/c.png", "top.png"], ("normal",))
+    assert normal == ["Normal"]
+    assert notes == ["folder Normal/ taken as normal (--normal-label normal, compared ignoring case)"]
+    assert class_folders(["normal/a.png", "crack/c.png"], ("normal",)) == (["normal"], [])
+
+
+@pytest.mark.parametrize("first, second", [("normal", "Normal"), ("crack", "Crack"), ("NORMAL", "normal")])
+def test_class_folders_differing_only_in_case_are_an_error_naming_both(first, second):
+    with pytest.raises(OddlingError, match="differ only in case") as info:
+        class_folders([f"{first}/a.png", f"{second}/b.png", "other/c.png"], ("normal",), where="test")
+    assert f"{first}/" in str(info.value) and f"{second}/" in str(info.value)
+    assert str(info.value).startswith("test has class folders")
+
+
+def _case_sensitive(folder) -> bool:
+    (folder / "probe").mkdir()
+    sensitive = not (folder / "PROBE").exists()
+    (folder / "probe").rmdir()
+    return sensitive
+
+
+def _digit_folders(root, folders, per_folder=3):
+    """A few of scikit-learn's bundled digits as PNGs in the given class folders (zeros in normal ones)."""
+    from sklearn.datasets import load_digits
+
+    from conftest import write_digit
+
+    digits = load_digits()
+    for j, (name, digit) in enumerate(folders.items()):
+        (root / name).mkdir(parents=True)
+        for i in [k for k, t in enumerate(digits.target) if t == digit][j * per_folder:(j + 1) * per_folder]:
+            write_digit(digits.images[i], root / name / f"d{i:04d}.png")
+    return root
+
+
+def test_evaluate_takes_Normal_as_normal_and_says_so(digits_bank, tmp_path):
+    from oddling.cli import main
+
+    test = _digit_folders(tmp_path / "test", {"Normal": 0, "crack": 3})
+    result = CliRunner().invoke(main, ["evaluate", str(test), "--bank", str(digits_bank.path),
+                                       "--out-dir", str(tmp_path / "out"), "-q"])
+    assert result.exit_code == 0, result.output
+    note = "folder Normal/ taken as normal (--normal-label normal, compared ignoring case)"
+    assert result.stderr.count(note) == 1
+    metrics = json.loads((tmp_path / "out" / "metrics.json").read_text())
+    assert (metrics["n_normal"], metrics["n_anomalous"]) == (3, 3)
+    assert metrics["normal_folders"] == ["Normal"] and note in metrics["notes"]
+
+
+def test_evaluate_refuses_class_folders_that_differ_only_in_case(digits_bank, tmp_path):
+    from oddling.cli import main
+
+    if not _case_sensitive(tmp_path):
+        pytest.skip("this file system does not keep normal/ and Normal/ apart")
+    test = _digit_folders(tmp_path / "test", {"normal": 0, "Normal": 0, "crack": 3}, per_folder=2)
+    result = CliRunner().invoke(main, ["evaluate", str(test), "--bank", str(digits_bank.path),
+                                       "--out-dir", str(tmp_path / "out"), "-q"])
+    assert result.exit_code == 2 and "Traceback" not in result.output
+    assert "differ only in case: Normal/ and normal/" in result.stderr
+
+
+def test_tune_refuses_class_folders_that_differ_only_in_case_before_any_work(tmp_path):
+    import oddling
+
+    if not _case_sensitive(tmp_path):
+        pytest.skip("this file system does not keep crack/ and Crack/ apart")
+    test = _digit_folders(tmp_path / "test", {"normal": 0, "crack": 3, "Crack": 4}, per_folder=2)
+    (tmp_path / "reference").mkdir()
+    with pytest.raises(OddlingError, match=r"differ only in case: Crack/ and crack/"):
+        oddling.tune(test, tmp_path / "reference", tmp_path / "b", grid=[("pixels:16", "knn", {"k": 1})],
+                     options=oddling.RunOptions(progress=False))
+    assert not (tmp_path / "b").exists()

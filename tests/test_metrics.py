@@ -384,3 +384,69 @@ def test_plot_pr_writes_a_png(tmp_path):
     precision, recall, _ = m.precision_recall_curve(y, s)
     out = plot_pr(precision, recall, m.average_precision(y, s), float(y.mean()), tmp_path / "pr.png")
     assert out.read_bytes()[:8] == PNG_SIGNATURE
+
+
+# --- copies: each content counted once in the interval ------------------------------------------
+
+def copies_case():
+    """30 copies of one normal (score 0.1) and 30 of one anomaly (0.9), plus 4 distinct of each."""
+    rng = np.random.default_rng(7)
+    y = np.r_[np.zeros(34, dtype=int), np.ones(34, dtype=int)]
+    s = np.r_[np.full(30, 0.1), rng.normal(0.2, 0.2, 4), np.full(30, 0.9), rng.normal(0.6, 0.2, 4)]
+    groups = ["n"] * 30 + ["n1", "n2", "n3", "n4"] + ["a"] * 30 + ["a1", "a2", "a3", "a4"]
+    return y, s, groups
+
+
+def test_auroc_ci_counts_each_content_once():
+    y, s, groups = copies_case()
+    once = np.r_[0, 30, 31, 32, 33, 34, 64, 65, 66, 67]   # the first copy of each content
+    # reference: scikit-learn's AUROC of one copy each, and Newcombe's limits solved as a quartic
+    auc_once = skm.roc_auc_score(y[once], s[once])
+    expected = newcombe_limits_from_the_quartic(auc_once, 5, 5)
+    assert m.auroc_ci(y, s, groups) == pytest.approx(expected, abs=1e-8)
+    # without groups every file counts: 34 vs 34 gives a narrower interval
+    low_files, _ = m.auroc_ci(y, s)
+    assert low_files > expected[0]
+
+
+def test_two_contents_in_many_copies_give_the_interval_of_two_images():
+    # 1,000 copies of one normal and 1,000 of one anomaly once gave "[0.998, 1.0]": that is 1 vs 1
+    y = np.r_[np.zeros(1000, dtype=int), np.ones(1000, dtype=int)]
+    s = np.r_[np.zeros(1000), np.ones(1000)]
+    groups = ["normal"] * 1000 + ["anomaly"] * 1000
+    low, high = m.auroc_ci(y, s, groups)
+    assert (low, high) == pytest.approx(newcombe_limits_from_the_quartic(1.0, 1, 1), abs=1e-8)  # NumPy/SciPy
+    assert low < 0.3 and high == 1.0
+    assert m.auroc_ci(y, s)[0] > 0.99   # what counting files claimed
+
+
+def test_distinct_contents_average_the_scores_of_copies_and_keep_contradictions():
+    y = np.array([0, 0, 1, 1, 0, 1])
+    s = np.array([0.1, 0.3, 0.8, 0.8, 0.5, 0.2])
+    groups = ["a", "a", "b", "b", None, "a"]     # "a" is also labelled anomalous once; None: unhashed
+    dy, ds = m.distinct_contents(y, s, groups)
+    assert dy.tolist() == [0, 1, 0, 1] and ds == pytest.approx([0.2, 0.8, 0.5, 0.2])
+    assert m.content_counts(y, groups) == {"n_distinct_normal": 2, "n_distinct_anomalous": 2,
+                                           "n_duplicate_files": 2, "n_contents_in_both_classes": 1}
+
+
+def test_evaluation_summary_counts_contents_and_bases_the_interval_on_them():
+    y, s, groups = copies_case()
+    summary = m.evaluation_summary(y, s, cutoff=0.5, groups=groups)
+    assert (summary["n_normal"], summary["n_anomalous"]) == (34, 34)
+    assert (summary["n_distinct_normal"], summary["n_distinct_anomalous"], summary["n_duplicate_files"]) == (5, 5, 58)
+    assert summary["auroc"] == round(skm.roc_auc_score(y, s), 6)   # reference: scikit-learn, every file counts
+    assert summary["auroc_ci95"] == [round(v, 6) for v in m.auroc_ci(y, s, groups)]
+    assert summary["small_sample"] is True   # 5 distinct contents per class, not 34
+    assert "distinct contents" in summary["auroc_ci_method"]
+
+
+def test_precision_with_nothing_flagged_is_null_with_a_note():
+    y, s = tied_integers()
+    summary = m.evaluation_summary(y, s, cutoff=np.inf)
+    c = summary["at_cutoff"]
+    assert c["precision"] is None and c["note"] == m.NOTHING_FLAGGED
+    assert (c["tp"], c["fp"], c["recall"], c["fpr"]) == (0, 0, 0.0, 0.0)
+    flagged = m.evaluation_summary(y, s, cutoff=3.0)["at_cutoff"]
+    # reference: scikit-learn's precision where something is flagged
+    assert flagged["precision"] == round(skm.precision_score(y, s > 3.0), 6) and flagged["note"] is None

@@ -133,3 +133,141 @@ def test_cli_json_has_chosen_leaderboard_and_holdout(digits, tmp_path):
     assert set(out["chosen"]) >= {"representation", "detector", "params"}
     assert all({"auroc", "auroc_ci95", "ms_per_image"} <= set(e) for e in out["leaderboard"])
     assert out["holdout_auroc"] >= 0.98
+
+
+# --- copies: statistics that count contents, not files --------------------------------------------
+
+def test_halves_keep_every_copy_of_a_content_on_one_side():
+    labels = np.array([0] * 40 + [1] * 40)
+    groups = ["n"] * 30 + [f"n{i}" for i in range(10)] + ["a"] * 30 + [f"a{i}" for i in range(10)]
+    for seed in range(5):
+        choose = split_halves(labels, seed, groups)
+        for g in set(groups):
+            sides = {bool(c) for c, h in zip(choose, groups) if h == g}
+            assert len(sides) == 1, g
+        # stratified by class over the 11 distinct contents of each: 6 choose, 5 check
+        for value in (0, 1):
+            assert len({h for h, c, y in zip(groups, choose, labels) if c and y == value}) == 6
+    assert (split_halves(labels, 3, groups) == split_halves(labels, 3, groups)).all()
+
+
+def test_halves_without_copies_are_the_split_without_groups():
+    labels = np.array([0] * 21 + [1] * 10)
+    assert (split_halves(labels, 0, [f"h{i}" for i in range(31)]) == split_halves(labels, 0)).all()
+
+
+def test_a_content_labelled_both_ways_stays_on_one_side():
+    labels = np.array([0, 0, 1, 0, 1, 1, 0, 1])
+    groups = ["x", "p", "x", "q", "r", "s", "t", "u"]
+    choose = split_halves(labels, 1, groups)
+    assert choose[0] == choose[2]
+
+
+def test_tune_interval_at_perfect_separation_is_not_zero_width():
+    from oddling.evaluation.metrics import delong_ci
+    from oddling.jobs.tuning import auroc_with_ci
+
+    y = np.r_[np.zeros(10, dtype=int), np.ones(8, dtype=int)]
+    s = np.r_[np.arange(10.0), 100.0 + np.arange(8)]
+    auc, (low, high) = auroc_with_ci(y, s)
+    assert auc == 1.0 and high == 1.0 and low < 0.8   # Newcombe 2006: about 0.78 for 8 vs 10
+    assert delong_ci(y, s) == (1.0, 1.0)              # the Wald interval tune used to report
+
+
+def test_evaluate_and_tune_give_the_same_interval_for_the_same_labels_and_scores():
+    from oddling.evaluation.metrics import evaluation_summary
+    from oddling.jobs.tuning import auroc_with_ci
+
+    rng = np.random.default_rng(4)
+    y = np.r_[np.zeros(25, dtype=int), np.ones(15, dtype=int)]
+    s = rng.normal(size=40) + 1.5 * y
+    groups = [f"h{i % 30}" if i < 25 else f"h{i}" for i in range(40)]   # some normal copies
+    summary = evaluation_summary(y, s, cutoff=1.0, groups=groups)
+    auc, ci = auroc_with_ci(y, s, groups)
+    assert summary["auroc"] == round(auc, 6)
+    assert summary["auroc_ci95"] == [round(v, 6) for v in ci]
+
+
+def _copies_case(root):
+    """scikit-learn's digits: 40 reference zeros; test/normal: 30 copies of one zero and 12 other
+    zeros; test/defect: 30 copies of one 1 and 12 other digits (1 to 9)."""
+    import shutil
+
+    from sklearn.datasets import load_digits
+
+    from conftest import write_digit
+
+    digits = load_digits()
+    zeros = np.random.default_rng(0).permutation(np.flatnonzero(digits.target == 0))
+    others = [int(np.flatnonzero(digits.target == d)[k]) for k in range(2) for d in range(1, 10)][:13]
+    for folder in ("reference", "test/normal", "test/defect"):
+        (root / folder).mkdir(parents=True)
+    for i in zeros[:40]:
+        write_digit(digits.images[i], root / "reference" / f"d{i:04d}.png")
+    for folder, picks in (("normal", zeros[40:53]), ("defect", others)):
+        for i in picks:
+            write_digit(digits.images[i], root / "test" / folder / f"d{i:04d}.png")
+        first = root / "test" / folder / f"d{picks[0]:04d}.png"
+        for k in range(29):
+            shutil.copy(first, root / "test" / folder / f"copy{k:02d}.png")
+    return root / "test", root / "reference"
+
+
+@pytest.fixture(scope="module")
+def copies(tmp_path_factory):
+    root = tmp_path_factory.mktemp("tune-copies")
+    test, reference = _copies_case(root)
+    result = oddling.tune(test, reference, root / "tuned.bank", grid=[("pixels:16", "knn", {"k": 1})], options=OPTS)
+    return test, reference, result
+
+
+def test_no_content_is_in_both_halves(copies):
+    import hashlib
+
+    test, _, result = copies
+    # reference: the files' SHA-256 by hashlib
+    digest = [hashlib.sha256((test / name).read_bytes()).hexdigest() for name in result.names]
+    chosen = {h for h, c in zip(digest, result.choose) if c}
+    held = {h for h, c in zip(digest, result.choose) if not c}
+    assert chosen and held and not chosen & held
+    assert len(digest) == 84 and len(set(digest)) == 26
+
+
+def test_tune_counts_contents_and_says_so(copies):
+    _, _, result = copies
+    board = json.loads(result.files["leaderboard_json"].read_text())
+    assert (board["n_distinct_normal"], board["n_distinct_anomalous"], board["n_duplicate_files"]) == (13, 13, 58)
+    assert board["n_choose"]["distinct_normal"] + board["n_holdout"]["distinct_normal"] == 13
+    assert board["auroc_ci_method"].startswith("Newcombe (2006)") and "distinct contents" in board["auroc_ci_method"]
+    assert any("58 of 84 labelled files repeat the content" in note for note in board["notes"])
+
+
+def test_tune_and_evaluate_give_the_same_interval_on_the_tuned_bank(copies):
+    import hashlib
+
+    from oddling.jobs.tuning import auroc_with_ci
+
+    test, _, result = copies
+    evaluated = oddling.evaluate(test, result.bank_path, options=OPTS).metrics
+    groups = [hashlib.sha256((test / name).read_bytes()).hexdigest() for name in result.names]
+    auc, ci = auroc_with_ci(result.labels, result.chosen.scores, groups)
+    assert evaluated["auroc"] == pytest.approx(auc, abs=1e-6)
+    assert evaluated["auroc_ci95"] == pytest.approx(ci, abs=1e-6)
+
+
+def test_tune_cli_says_how_many_files_are_copies(copies, tmp_path):
+    test, reference, _ = copies
+    result = CliRunner().invoke(main, ["tune", str(test), "--reference", str(reference), "--bank",
+                                       str(tmp_path / "t.bank"), "--representation", "pixels:16", "--json", "-q"])
+    assert result.exit_code == 0, result.output
+    assert "warning: 58 of 84 labelled files repeat the content of another file of their class" in result.stderr
+    out = json.loads(result.stdout)
+    assert out["n_duplicate_files"] == 58 and out["holdout_auroc_ci95"][0] < out["holdout_auroc_ci95"][1]
+
+
+def test_copies_do_not_count_toward_the_ten_of_each(tmp_path):
+    test, reference = _copies_case(tmp_path)
+    for f in sorted((test / "normal").glob("d*.png"))[1:5]:   # 9 distinct zeros left, with 29 copies
+        f.unlink()
+    with pytest.raises(OddlingError, match=r"\(9 and 13 distinct contents\); tune needs at least 10 of each"):
+        oddling.tune(test, reference, tmp_path / "b", grid=[("pixels:16", "knn", {"k": 1})], options=OPTS)

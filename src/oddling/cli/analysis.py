@@ -220,7 +220,8 @@ def evaluate(test_dir, bank_path, out_dir, labels_csv, normal_labels, beta, targ
             f"At the bank's cutoff: precision {_num(c['precision'])}, recall {_num(c['recall'])}, "
             f"false-alarm rate {_num(c['fpr'])}.\nResults in {paths['metrics'].parent}", err=True)
         if m.get("small_sample"):
-            click.echo(f"Few images ({m['n_normal']} normal, {m['n_anomalous']} anomalous): the interval "
+            click.echo(f"Few images ({m['n_distinct_normal']} normal, {m['n_distinct_anomalous']} anomalous, copies "
+                       f"counted once): the interval "
                        f"({m.get('auroc_ci_method', '')}) is wide; label more images before trusting these figures.",
                        err=True)
         if m["unreadable"]:
@@ -324,6 +325,8 @@ def tune(test_dir, reference_dir, bank_path, labels_csv, normal_labels, represen
                       target_fpr=target_fpr, guarantee=guarantee, confidence=confidence,
                       allow_no_cutoff=allow_no_cutoff, seed=seed, force=force, options=_options(**run))
     summary = result.summary()
+    for note in result.notes:
+        click.echo(f"warning: {note}", err=True)
     if as_json:
         _print_json(summary)
         return

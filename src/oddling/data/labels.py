@@ -14,13 +14,47 @@ ANOMALY_WORDS = frozenset({"anomaly", "anomalous", "1"})
 ROWS_SHOWN = 5   # offending rows named in an error message; the count says how many there are
 
 
+def _is_normal(folder: str, normal_labels: tuple[str, ...]) -> bool:
+    return folder.casefold() in {name.casefold() for name in normal_labels}
+
+
 def label_from_folder(rel_path: str, normal_labels: tuple[str, ...]) -> tuple[int, str] | None:
-    """(label, kind) from the first folder of a relative path; None for files at the top level."""
+    """(label, kind) from the first folder of a relative path; None for files at the top level.
+
+    A folder whose name equals one of `normal_labels` ignoring case (`Normal/`, `NORMAL/`) is
+    normal; any other is an anomaly kind named after it."""
     parts = rel_path.split("/")
     if len(parts) < 2:
         return None
     folder = parts[0]
-    return (0, "normal") if folder in normal_labels else (1, folder)
+    return (0, "normal") if _is_normal(folder, normal_labels) else (1, folder)
+
+
+def class_folders(rel_paths: Iterable[str], normal_labels: tuple[str, ...],
+                  where: str | None = None) -> tuple[list[str], list[str]]:
+    """(the top-level folders taken as normal, notes) for the relative paths of a test folder.
+
+    Checks the class folders label_from_folder reads: two whose names differ only in case
+    (`normal/` and `Normal/`, `crack/` and `Crack/`) raise OddlingError naming both, since which
+    class was meant cannot be told (and a case-insensitive disk would merge them). The one note,
+    if any, names the normal folders whose name matches a normal label only when case is ignored.
+    """
+    folders = sorted({p.split("/")[0] for p in rel_paths if "/" in p})
+    by_fold: dict[str, list[str]] = {}
+    for name in folders:
+        by_fold.setdefault(name.casefold(), []).append(name)
+    clashes = [names for names in by_fold.values() if len(names) > 1]
+    if clashes:
+        shown = "; ".join(" and ".join(f"{n}/" for n in names) for names in clashes[:ROWS_SHOWN])
+        raise OddlingError(f"{where + ' has' if where else 'found'} class folders whose names differ only in case: "
+                           f"{shown}; labels come from folder names, so rename or merge them into one")
+    normal = [name for name in folders if _is_normal(name, normal_labels)]
+    by_case = [name for name in normal if name not in normal_labels]
+    notes = []
+    if by_case:
+        notes.append(f"{'folder' if len(by_case) == 1 else 'folders'} {', '.join(n + '/' for n in by_case)} taken as "
+                     f"normal (--normal-label {', '.join(normal_labels)}, compared ignoring case)")
+    return normal, notes
 
 
 def _problems_message(path: Path, problems: list[str]) -> str:

@@ -1,6 +1,7 @@
 """How well scores separate normal (label 0) from anomalous (label 1) samples: ROC and PR curves,
-AUROC with a confidence interval (Newcombe's score interval; DeLong's variance too), rates and
-F-beta at a cutoff. Pure NumPy/SciPy: importing this module does not load the embedding code.
+AUROC with a confidence interval (Newcombe's score interval on distinct contents, `auroc_ci`, the
+one interval evaluate and tune report; DeLong's variance too), rates and F-beta at a cutoff.
+Pure NumPy/SciPy: importing this module does not load the embedding code.
 
 Higher scores are more anomalous; a sample is predicted anomalous when its score is above the
 cutoff ("score > cutoff"), the same rule the bank uses to flag images. The curves equal
@@ -19,8 +20,9 @@ from scipy.stats import norm, rankdata
 
 from oddling.numbers import json_number
 
-CI_METHOD = ("Newcombe (2006) method 5: score interval with the Hanley-McNeil variance "
-             "for a balanced design")
+CI_METHOD = ("Newcombe (2006) method 5: score interval with the Hanley-McNeil variance for a balanced "
+             "design, on distinct contents: copies of one file (same SHA-256) with the same label count once, at "
+             "their mean score (auroc_distinct is the AUROC counted so; auroc counts every file)")
 _EDGE = 1e-12           # newcombe_ci: how far inside [0, 1] an AUROC of 0 or 1 is bracketed
 SMALL_SAMPLE_MIN = 20   # fewer normal or anomalous samples than this: the interval is wide, say so
 _TPR_AT_FPR_RATES = (0.01, 0.05)
@@ -179,7 +181,8 @@ def delong_ci(labels, scores, level: float = 0.95) -> tuple[float, float]:
 
     A Wald interval: it shrinks to a point when the classes are perfectly separated (the variance is
     then 0, so "1.000-1.000" from 10 vs 8 images) and covers too rarely at high AUROC and small n.
-    evaluation_summary reports newcombe_ci instead; this stays for comparison and large samples.
+    evaluate and tune report auroc_ci (Newcombe's score interval on distinct contents) instead; this
+    stays for comparison and large samples, and tune's tie band uses DeLong's standard error.
     """
     y, s = _check(labels, scores)
     return _delong_ci(y, s, level)
@@ -243,6 +246,76 @@ def hanley_mcneil_se(auc: float, n_pos: int, n_neg: int) -> float:
     return math.sqrt(max(var, 0.0))
 
 
+# --- copies: statistics that count contents, not files --------------------------------------------
+
+def _content_codes(y: np.ndarray, groups) -> np.ndarray:
+    """One integer per (content, label), numbered in order of first appearance; a missing group
+    (None: a file that could not be hashed) is a content of its own."""
+    if groups is None:
+        return np.arange(len(y))
+    groups = list(groups)
+    if len(groups) != len(y):
+        raise ValueError(f"groups must have one entry per sample, got: {len(groups)} for {len(y)} samples")
+    seen: dict = {}
+    codes = np.empty(len(y), dtype=np.int64)
+    for i, (label, group) in enumerate(zip(y.tolist(), groups)):
+        key = (label, group) if group is not None else (label, None, i)
+        codes[i] = seen.setdefault(key, len(seen))
+    return codes
+
+
+def _distinct(y, s, groups) -> tuple[np.ndarray, np.ndarray]:
+    codes = _content_codes(y, groups)
+    first = np.unique(codes, return_index=True)[1]   # codes are 0..k-1 in order of first appearance
+    mean = np.bincount(codes, weights=s) / np.bincount(codes)
+    return y[first], mean
+
+
+def distinct_contents(labels, scores, groups) -> tuple[np.ndarray, np.ndarray]:
+    """(labels, scores) with each content counted once per label: the copies of one file (same
+    entry in `groups`, e.g. the SHA-256 of its bytes) with the same label become one sample, at
+    their mean score (copies score alike with one bank; the mean absorbs the last bits a different
+    batch can move). A content labelled both ways stays once in each class. None in `groups` is a
+    content of its own. Order: first appearance."""
+    return _distinct(*_check(labels, scores, both_classes=False), groups)
+
+
+def content_counts(labels, groups) -> dict[str, int]:
+    """How many distinct contents each class holds: {"n_distinct_normal", "n_distinct_anomalous",
+    "n_duplicate_files" (files beyond the first of their content within their class),
+    "n_contents_in_both_classes" (contents labelled normal in one copy and anomalous in another)}."""
+    y = np.asarray(labels)
+    y, _ = _check(y, np.zeros(len(y)), both_classes=False)
+    groups = None if groups is None else list(groups)
+    codes = _content_codes(y, groups)
+    first = np.unique(codes, return_index=True)[1]
+    distinct = y[first]
+    n_normal, n_anomalous = int(np.sum(distinct == 0)), int(np.sum(distinct == 1))
+    both = 0
+    if groups is not None:
+        by_label = [{g for g, label in zip(groups, y.tolist()) if g is not None and label == value} for value in (0, 1)]
+        both = len(by_label[0] & by_label[1])
+    return {"n_distinct_normal": n_normal, "n_distinct_anomalous": n_anomalous,
+            "n_duplicate_files": len(y) - n_normal - n_anomalous, "n_contents_in_both_classes": both}
+
+
+def _auroc_ci(y, s, groups, level: float) -> tuple[float, float]:
+    dy, ds = _distinct(y, s, groups)
+    return newcombe_ci(_auroc(dy, ds), int(np.sum(dy == 1)), int(np.sum(dy == 0)), level)
+
+
+def auroc_ci(labels, scores, groups=None, level: float = 0.95) -> tuple[float, float]:
+    """The AUROC interval oddling reports, in evaluate and tune alike (CI_METHOD says it in words).
+
+    newcombe_ci of the AUROC of the distinct contents (distinct_contents), with their counts as
+    the class sizes: 1,000 copies of one normal image and 1,000 of one anomalous image are 1 vs 1,
+    not 1,000 vs 1,000, so the interval is as wide as two images allow. `groups=None`: every sample
+    is a content of its own. Never zero-width at perfect separation (see newcombe_ci).
+    """
+    y, s = _check(labels, scores)
+    return _auroc_ci(y, s, groups, level)
+
+
 # --- operating points ---------------------------------------------------------------------------
 
 def _tpr_at_fpr(y, s, max_fpr: float) -> float:
@@ -284,13 +357,18 @@ class Confusion:
     """Counts of the rule "predicted anomalous iff score > cutoff", anomalous being positive.
 
     Rates whose denominator is zero (precision with nothing flagged, recall without anomalies,
-    fpr without normals) are 0.0, as scikit-learn's ``zero_division=0``.
+    fpr without normals) are 0.0, as scikit-learn's ``zero_division=0``; evaluation_summary
+    reports precision with nothing flagged as None instead (0 of 0 is not 0).
     """
 
     tp: int
     fp: int
     tn: int
     fn: int
+
+    @property
+    def n_flagged(self) -> int:
+        return self.tp + self.fp
 
     @property
     def precision(self) -> float:
@@ -368,8 +446,12 @@ def _per_kind_auroc(y, s, kinds: Sequence[str] | None) -> dict[str, float | None
     return out
 
 
+NOTHING_FLAGGED = ("nothing is flagged at this cutoff: precision (anomalies among flagged images, 0 of 0) is "
+                   "undefined, written null; recall is 0")
+
+
 def evaluation_summary(labels, scores, cutoff: float, kinds: Sequence[str] | None = None,
-                       beta: float = 1.0) -> dict:
+                       beta: float = 1.0, groups: Sequence | None = None) -> dict:
     """Everything metrics.json reports, as plain JSON values (floats rounded to 6 decimals, None
     for NaN/inf).
 
@@ -377,36 +459,47 @@ def evaluation_summary(labels, scores, cutoff: float, kinds: Sequence[str] | Non
     `kinds` names each sample's anomaly kind (ignored for normals); per_kind_auroc compares the
     anomalies of one kind with all normals. Raises ValueError without normals or anomalies.
 
-    auroc_ci95 is newcombe_ci (always defined once both classes are present; auroc_ci_method names
-    it). small_sample is true when either class has fewer than SMALL_SAMPLE_MIN (20) samples, a
-    common rule of thumb: the AUROC then moves a lot with a single image and the interval is wide.
+    `groups` names each sample's content (its file's SHA-256; None where unknown): the counts and
+    the interval take each content once (auroc_ci, content_counts); the point estimates count
+    every sample. auroc_ci95 is auroc_ci (always defined once both classes are present;
+    auroc_ci_method names it). small_sample is true when either class has fewer than
+    SMALL_SAMPLE_MIN (20) distinct contents, a common rule of thumb: the AUROC then moves a lot
+    with a single image and the interval is wide. at_cutoff.precision is None when nothing is
+    flagged (at_cutoff.note says so; None otherwise).
     """
     y, s = _check(labels, scores)
     cutoff, beta = _check_cutoff(cutoff), _check_beta(beta)
     auc = _auroc(y, s)
     n_normal, n_anomalous = int(np.sum(y == 0)), int(np.sum(y == 1))
-    low, high = newcombe_ci(auc, n_anomalous, n_normal, 0.95)
+    counts = content_counts(y, groups)
+    dy, ds = _distinct(y, s, groups)
+    low, high = _auroc_ci(y, s, groups, 0.95)
     c = _confusion(y, s, cutoff)
     best = _best_f_beta(y, s, beta)
     return {
         "auroc": json_number(auc),
+        "auroc_distinct": json_number(_auroc(dy, ds)),
         "auroc_ci95": [json_number(low), json_number(high)],
         "auroc_ci_method": CI_METHOD,
-        "small_sample": min(n_normal, n_anomalous) < SMALL_SAMPLE_MIN,
+        "small_sample": min(counts["n_distinct_normal"], counts["n_distinct_anomalous"]) < SMALL_SAMPLE_MIN,
         "small_sample_min": SMALL_SAMPLE_MIN,
         "average_precision": json_number(_average_precision(y, s)),
         "tpr_at_fpr": {str(r): json_number(_tpr_at_fpr(y, s, r)) for r in _TPR_AT_FPR_RATES},
         "fpr_at_tpr95": json_number(_fpr_at_tpr(y, s, 0.95)),
         "n_normal": n_normal,
         "n_anomalous": n_anomalous,
+        **counts,
         "per_kind_auroc": _per_kind_auroc(y, s, kinds),
-        "at_cutoff": {"cutoff": json_number(cutoff), "precision": json_number(c.precision),
+        "at_cutoff": {"cutoff": json_number(cutoff),
+                      "precision": json_number(c.precision) if c.n_flagged else None,
                       "recall": json_number(c.recall), "fpr": json_number(c.fpr),
-                      "tp": c.tp, "fp": c.fp, "tn": c.tn, "fn": c.fn},
+                      "tp": c.tp, "fp": c.fp, "tn": c.tn, "fn": c.fn,
+                      "note": None if c.n_flagged else NOTHING_FLAGGED},
         "best_f_beta": {key: json_number(value) for key, value in best.items()},
     }
 
 
-__all__ = ["CI_METHOD", "SMALL_SAMPLE_MIN", "Confusion", "auroc", "average_precision", "best_f_beta",
-           "confusion_at", "delong_ci", "delong_variance", "evaluation_summary", "fpr_at_tpr", "hanley_mcneil_se",
-           "newcombe_ci", "newcombe_variance", "precision_recall_curve", "roc_curve", "tpr_at_fpr"]
+__all__ = ["CI_METHOD", "NOTHING_FLAGGED", "SMALL_SAMPLE_MIN", "Confusion", "auroc", "auroc_ci", "average_precision",
+           "best_f_beta", "confusion_at", "content_counts", "delong_ci", "delong_variance", "distinct_contents",
+           "evaluation_summary", "fpr_at_tpr", "hanley_mcneil_se", "newcombe_ci", "newcombe_variance",
+           "precision_recall_curve", "roc_curve", "tpr_at_fpr"]

@@ -53,34 +53,59 @@ class EvaluationResult:
 
 
 def attach_labels(rows: list[ScoreRow], labels_csv: str | os.PathLike | None,
-                  normal_labels: tuple[str, ...]) -> dict:
+                  normal_labels: tuple[str, ...], root: Path | None = None) -> dict:
     """Set each row's label and kind; return what the labels leave out (data.labels.label_summary):
-    rows of the labels CSV whose file is not in the folder, files with no label."""
-    from oddling.data.labels import label_from_folder, label_summary, read_labels_csv
+    rows of the labels CSV whose file is not in the folder, files with no label; with class
+    folders also `normal_folders` (the folders taken as normal, any case) and `notes` (one line
+    when a folder was taken as normal only by ignoring case). Class folders whose names differ only
+    in case are an OddlingError (data.labels.class_folders)."""
+    from oddling.data.labels import class_folders, label_from_folder, label_summary, read_labels_csv
 
     table = read_labels_csv(Path(labels_csv)) if labels_csv else None
+    normal_folders, notes = [], []
+    if table is None:
+        normal_folders, notes = class_folders([r.path for r in rows], normal_labels,
+                                              str(root) if root is not None else None)
     for row in rows:
         found = table.get(row.path) if table is not None else label_from_folder(row.path, normal_labels)
         if found is not None:
             row.label, row.kind = found
     if table is not None:
-        return label_summary(table, [r.path for r in rows])
+        return label_summary(table, [r.path for r in rows]) | {"normal_folders": [], "notes": []}
     unlabelled = sorted(r.path for r in rows if r.label is None)
-    return {"missing_files": [], "unlabelled": unlabelled, "n_labelled": len(rows) - len(unlabelled)}
+    return {"missing_files": [], "unlabelled": unlabelled, "n_labelled": len(rows) - len(unlabelled),
+            "normal_folders": normal_folders, "notes": notes}
 
 
 def label_notes(gaps: dict, test_dir: Path, from_csv: bool) -> list[str]:
-    """What the labels leave out, in words for stderr (data.labels.describe_label_summary)."""
+    """What the labels leave out (and how folders were read), in words for stderr
+    (data.labels.describe_label_summary)."""
     from oddling.data.labels import ROWS_SHOWN, describe_label_summary
 
+    notes = list(gaps.get("notes", []))
     if from_csv:
-        return describe_label_summary(gaps)
+        return notes + describe_label_summary(gaps)
     paths = gaps["unlabelled"]
     if not paths:
-        return []
+        return notes
     more = f", and {len(paths) - ROWS_SHOWN} more" if len(paths) > ROWS_SHOWN else ""
-    return [f"{plural(len(paths), 'file')} at the top of {test_dir}, outside any class subfolder, "
-            f"{'has' if len(paths) == 1 else 'have'} no label (not counted): {', '.join(paths[:ROWS_SHOWN])}{more}"]
+    return notes + [f"{plural(len(paths), 'file')} at the top of {test_dir}, outside any class subfolder, "
+                    f"{'has' if len(paths) == 1 else 'have'} no label (not counted): "
+                    f"{', '.join(paths[:ROWS_SHOWN])}{more}"]
+
+
+def copies_notes(counts: dict, n_files: int) -> list[str]:
+    """What copies (files of one content, metrics.content_counts) do to the figures, for stderr."""
+    notes = []
+    if counts["n_duplicate_files"]:
+        notes.append(f"{counts['n_duplicate_files']} of {plural(n_files, 'labelled file')} repeat the content of "
+                     f"another file of their class ({counts['n_distinct_normal']} distinct normal, "
+                     f"{counts['n_distinct_anomalous']} distinct anomalous contents): the AUROC counts every file, "
+                     "its 95% interval each content once")
+    if counts["n_contents_in_both_classes"]:
+        notes.append(f"{plural(counts['n_contents_in_both_classes'], 'content')} labelled both normal and anomalous "
+                     "(copies of one file in two classes): check the labels")
+    return notes
 
 
 def labelled_arrays(rows: list[ScoreRow], where: Path, normal_labels: tuple[str, ...]) -> tuple[np.ndarray, np.ndarray]:
@@ -106,10 +131,13 @@ def evaluate(
 ) -> EvaluationResult:
     """Score a labelled test folder and measure how well scores separate normal from anomalous.
 
-    Labels come from subfolders (a folder named in `normal_labels` is normal, any other is an
-    anomaly kind) or from `labels_csv`. Unreadable and unlabelled files are listed, never counted;
-    `notes` words what the labels leave out (rows of the CSV whose file is missing, files with no
-    label) for the CLI to print.
+    Labels come from subfolders (a folder named in `normal_labels`, compared ignoring case, is
+    normal, any other is an anomaly kind; two folders differing only in case are an error) or from
+    `labels_csv`. Unreadable and unlabelled files are listed, never counted. Copies (files of one
+    SHA-256) count as files in the AUROC and once per content in its interval
+    (metrics.evaluation_summary). `notes` (also metrics.json's `notes`) words for the CLI what the
+    labels leave out (rows of the CSV whose file is missing, files with no label), a folder taken as
+    normal by ignoring case, copies, and a cutoff that flags nothing.
     """
     from oddling.evaluation.metrics import evaluation_summary
 
@@ -124,7 +152,7 @@ def evaluate(
     embedded = embed_folder(test_dir, rep, options, "evaluating", (bank.path,) if bank.path else ())
     rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)
     warn_about_encoding(bank, test_dir, rows)
-    gaps = attach_labels(rows, labels_csv, normal_labels)
+    gaps = attach_labels(rows, labels_csv, normal_labels, test_dir)
     rows = sort_rows(rows)
     notes = label_notes(gaps, test_dir, labels_csv is not None)
     try:
@@ -134,7 +162,23 @@ def evaluate(
             raise
         raise OddlingError(f"{exc}; " + "; ".join(notes)) from exc
     used = [r for r in rows if r.score is not None and r.label is not None]
-    summary = evaluation_summary(labels, scores, cutoff, kinds=[r.kind for r in used], beta=beta)
+    summary = evaluation_summary(labels, scores, cutoff, kinds=[r.kind for r in used], beta=beta,
+                                 groups=[r.sha256 for r in used])
+    notes += copies_notes(summary, len(used))
+    at_cutoff = summary["at_cutoff"]
+    if at_cutoff["note"]:   # nothing flagged: say why in the bank's terms
+        threshold = bank.threshold(target_fpr)
+        if not threshold.can_flag:
+            at_cutoff["note"] = (f"this bank cannot flag at {'its rate' if target_fpr is None else 'the rate asked'}: "
+                                 f"{threshold.support_text()}; nothing is flagged, so precision is undefined (null) "
+                                 "and recall is 0")
+        else:
+            at_cutoff["note"] = (f"nothing is flagged at the bank's cutoff ({threshold.cutoff:.4f} at target "
+                                 f"false-alarm rate {threshold.target_fpr:g}): precision (anomalies among flagged "
+                                 "images, 0 of 0) is undefined (null); recall is 0")
+        notes.append(at_cutoff["note"])
+    summary["normal_folders"] = gaps["normal_folders"]
+    summary["notes"] = notes
     summary["bank"] = {"path": str(bank.path) if bank.path else None, "backbone": bank.backbone["id"],
                        "representation": bank.representation["id"], "detector": bank.detector.name,
                        "params": bank.detector.get_params(), "n_references": bank.size,

@@ -5,14 +5,19 @@ reconstruction residuals and isolation forests each win somewhere, and which fea
 them matters as much. So the comparison is run on the data at hand, honestly:
 
 - every configuration is fitted on the reference folder only and scores the labelled folder;
-- the configuration is *chosen* on a seeded half of the labelled images (stratified by class)
-  and its AUROC is then reported on the other half (`holdout_auroc`), which played no part in
-  the choice; the leaderboard's figures, measured on the choosing half, are optimistic because
-  the best of many is picked there;
+- the configuration is *chosen* on a seeded half of the labelled images (stratified by class,
+  grouped by content: every copy of a file, by SHA-256, goes to the same half, so a copy on the
+  other side cannot make the check an echo of the choice) and its AUROC is then reported on the
+  other half (`holdout_auroc`), which played no part in the choice; the leaderboard's figures,
+  measured on the choosing half, are optimistic because the best of many is picked there;
+- every AUROC interval is the one `evaluate` reports (metrics.auroc_ci: Newcombe's score
+  interval, each distinct content counted once);
 - near ties go to the cheaper configuration (ms per image, measured without the cache, as new
-  images will cost): within one standard error of the best (DeLong), the "one-standard-error
-  rule" of Breiman et al. 1984 (Hastie, Tibshirani & Friedman, *Elements of Statistical
-  Learning*, 7.10), and never less than TIE.
+  images will cost): within one standard error of the best, the "one-standard-error rule" of
+  Breiman et al. 1984 (Hastie, Tibshirani & Friedman, *Elements of Statistical Learning*, 7.10),
+  and never less than TIE. That standard error is DeLong's (metrics.delong_variance, on distinct
+  contents), not the interval's: it is the usual one for comparing AUROCs and needs no
+  distributional model, only two distinct contents of each class.
 """
 from __future__ import annotations
 
@@ -29,12 +34,13 @@ import numpy as np
 
 from oddling.backbones.representation import RepresentationSpec, load_representation
 from oddling.bank.store import save_bank
-from oddling.data.intake import IntakeError, discover
+from oddling.data.intake import IntakeError, check_type, discover, sha256_file
 from oddling.detectors import make_detector
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
+from oddling.evaluation.metrics import CI_METHOD, content_counts
 from oddling.jobs.common import RunOptions, check_rate, embed_paths, folder, refuse_existing
-from oddling.jobs.evaluation import attach_labels
+from oddling.jobs.evaluation import attach_labels, copies_notes
 from oddling.reporting.results import ScoreRow, json_number, write_text
 
 MIN_PER_CLASS = 10     # below this an AUROC, let alone a choice between configurations, means little
@@ -55,8 +61,8 @@ class Trial:
     detector: str
     params: dict
     auroc: float | None = None          # on the choosing half
-    auroc_ci95: list | None = None
-    auroc_se: float | None = None       # DeLong standard error, for the tie band
+    auroc_ci95: list | None = None      # metrics.auroc_ci, as evaluate's
+    auroc_se: float | None = None       # DeLong standard error on distinct contents, for the tie band only
     ms_per_image: float | None = None   # features + scoring, per image of the labelled folder
     supports_target: bool | None = None  # whether its bank can flag anything at the target rate
     status: str = "ok"
@@ -87,6 +93,10 @@ class TuneResult:
     files: dict = field(default_factory=dict)
     stopped_early: bool = False
     labels: np.ndarray | None = field(default=None, repr=False)   # of the labelled images, in discovery order
+    choose: np.ndarray | None = field(default=None, repr=False)   # True for the choosing half, same order
+    names: list[str] = field(default_factory=list, repr=False)    # their paths relative to the test folder
+    contents: dict = field(default_factory=dict)   # metrics.content_counts of the labelled images
+    notes: list[str] = field(default_factory=list)   # for stderr: folders read by case, copies
 
     def summary(self) -> dict:
         calibration = self.chosen.bank.calibration if self.chosen.bank is not None else {}
@@ -98,14 +108,17 @@ class TuneResult:
                                                "rate_note": calibration.get("note")},
             "holdout_auroc": json_number(self.holdout_auroc),
             "holdout_auroc_ci95": [json_number(v) for v in self.holdout_auroc_ci95] if self.holdout_auroc_ci95 else None,
+            "auroc_ci_method": CI_METHOD,
             "leaderboard": [t.to_dict() for t in self.leaderboard],
             "n_choose": self.n_choose, "n_holdout": self.n_holdout,
+            **self.contents,
+            "notes": self.notes,
             "bank": str(self.bank_path) if self.bank_path else None,
             "files": {k: str(v) for k, v in self.files.items()},
             "stopped_early": self.stopped_early,
             "note": ("leaderboard AUROCs are measured on the half of the labelled images used to choose, so the "
                      "best of them is optimistic; holdout_auroc is measured on the other half, which played no part "
-                     "in the choice"),
+                     "in the choice; the halves split distinct contents (every copy of a file is in the same half)"),
         }
 
 
@@ -118,26 +131,44 @@ def default_grid(representations: list[str] | None = None) -> list[tuple[str, st
     return grid
 
 
-def split_halves(labels: np.ndarray, seed: int) -> np.ndarray:
-    """True for the choosing half: each class shuffled (seeded) and split in two."""
+def split_halves(labels: np.ndarray, seed: int, groups=None) -> np.ndarray:
+    """True for the choosing half: each class's distinct contents shuffled (seeded) and split in two.
+
+    `groups` names each image's content (its SHA-256; None: a content of its own); every copy of
+    one content lands in the same half, so no content is on both sides. A content labelled both
+    normal and anomalous goes where its normal copies go, and counts toward the anomalous half it
+    lands in. Without groups every image is its own content (the same split as before groups).
+    """
+    labels = np.asarray(labels)
+    groups = list(range(len(labels))) if groups is None else [
+        g if g is not None else ("file", i) for i, g in enumerate(groups)]
+    codes: dict = {}
+    code = np.array([codes.setdefault(g, len(codes)) for g in groups], dtype=np.int64)
     rng = np.random.default_rng(seed)
-    choose = np.zeros(len(labels), dtype=bool)
+    side: dict[int, bool] = {}
     for value in (0, 1):
-        rows = rng.permutation(np.flatnonzero(labels == value))
-        choose[rows[: (len(rows) + 1) // 2]] = True
-    return choose
+        members = list(dict.fromkeys(code[labels == value].tolist()))   # first appearance order
+        free = np.array([c for c in members if c not in side], dtype=np.int64)
+        wanted = (len(members) + 1) // 2 - sum(side[c] for c in members if c in side)
+        order = rng.permutation(free)
+        for i, c in enumerate(order.tolist()):
+            side[c] = i < wanted
+    return np.array([side[c] for c in code.tolist()], dtype=bool)
 
 
-def _auroc_with_ci(labels: np.ndarray, scores: np.ndarray) -> tuple[float, list]:
-    from oddling.evaluation.metrics import auroc, delong_ci
+def auroc_with_ci(labels: np.ndarray, scores: np.ndarray, groups=None) -> tuple[float, list]:
+    """(AUROC over every image, 95% interval over distinct contents): the figures evaluate reports."""
+    from oddling.evaluation.metrics import auroc, auroc_ci
 
-    return auroc(labels, scores), list(delong_ci(labels, scores))
+    return auroc(labels, scores), list(auroc_ci(labels, scores, groups))
 
 
-def _auroc_se(labels: np.ndarray, scores: np.ndarray) -> float:
-    from oddling.evaluation.metrics import delong_variance
+def _auroc_se(labels: np.ndarray, scores: np.ndarray, groups=None) -> float | None:
+    """DeLong's standard error with each distinct content once; None below two contents of a class."""
+    from oddling.evaluation.metrics import delong_variance, distinct_contents
 
-    return float(np.sqrt(max(delong_variance(labels, scores), 0.0)))
+    var = delong_variance(*distinct_contents(labels, scores, groups))
+    return None if np.isnan(var) else float(np.sqrt(max(var, 0.0)))
 
 
 def _uncached_ms_per_image(root: Path, paths: list[Path], representation, options: RunOptions) -> float:
@@ -165,21 +196,49 @@ def rank(trials: list[Trial]) -> list[Trial]:
     return ties + others + rest
 
 
-def _labelled_paths(test_dir: Path, labels_csv, normal_labels) -> tuple[list[Path], np.ndarray, list[str]]:
+def _content_hash(path: Path) -> str | None:
+    """The file's SHA-256 (intake.sha256_file) after the checks made before any open, as the runner
+    does; None for a file those refuse or that cannot be read (it is then a content of its own)."""
+    try:
+        check_type(path)
+        return sha256_file(path)
+    except (IntakeError, OSError):
+        return None
+
+
+@dataclass
+class Labelled:
+    """The labelled images of a test folder, in discovery order, with their content hashes."""
+
+    paths: list[Path]
+    labels: np.ndarray
+    names: list[str]
+    hashes: list[str | None]
+    contents: dict     # metrics.content_counts
+    notes: list[str]
+
+
+def _labelled_paths(test_dir: Path, labels_csv, normal_labels) -> Labelled:
     try:
         paths = discover(test_dir)
     except IntakeError as exc:
         raise OddlingError(exc.status) from exc
     rows = [ScoreRow(path=p.relative_to(test_dir).as_posix(), status=OK) for p in paths]
-    attach_labels(rows, labels_csv, normal_labels)
+    gaps = attach_labels(rows, labels_csv, normal_labels, test_dir)
     keep = [(p, r) for p, r in zip(paths, rows) if r.label is not None]
     labels = np.array([r.label for _, r in keep], dtype=np.int64)
+    hashes = [_content_hash(p) for p, _ in keep]
+    contents = content_counts(labels, hashes)
     n0, n1 = int((labels == 0).sum()), int((labels == 1).sum())
-    if n0 < MIN_PER_CLASS or n1 < MIN_PER_CLASS:
+    d0, d1 = contents["n_distinct_normal"], contents["n_distinct_anomalous"]
+    if d0 < MIN_PER_CLASS or d1 < MIN_PER_CLASS:
+        copies = f" ({d0} and {d1} distinct contents)" if (d0, d1) != (n0, n1) else ""
         raise OddlingError(
-            f"{test_dir} has {n0} normal and {n1} anomalous labelled images; tune needs at least {MIN_PER_CLASS} of "
-            f"each (half of them choose, half check the choice). Normal folders: {', '.join(normal_labels)}")
-    return [p for p, _ in keep], labels, [r.path for _, r in keep]
+            f"{test_dir} has {n0} normal and {n1} anomalous labelled images{copies}; tune needs at least "
+            f"{MIN_PER_CLASS} of each, copies of one file counted once (half of them choose, half check the "
+            f"choice). Normal folders: {', '.join(normal_labels)}")
+    notes = list(gaps["notes"]) + copies_notes(contents, len(keep))
+    return Labelled([p for p, _ in keep], labels, [r.path for _, r in keep], hashes, contents, notes)
 
 
 def tune(
@@ -228,8 +287,9 @@ def tune(
     grid = grid or default_grid(representations)
     for rep, name, params in grid:        # every configuration checked before any work starts
         check_pairing(RepresentationSpec.parse(rep), make_detector(name, params))
-    test_paths, labels, test_names = _labelled_paths(test_dir, labels_csv, normal_labels)
-    choose = split_halves(labels, seed)
+    labelled = _labelled_paths(test_dir, labels_csv, normal_labels)
+    test_paths, labels, hashes = labelled.paths, labelled.labels, labelled.hashes
+    choose = split_halves(labels, seed, hashes)
     exclude = (bank_path,) if bank_path is not None else ()
     ref_paths = discover(reference_dir, exclude=exclude)
 
@@ -262,6 +322,7 @@ def tune(
                 bar.update(len(configs))
                 continue
             readable = np.array([r.row is not None for r in test.records])
+            readable_hashes = [h for h, ok in zip(hashes, readable) if ok]
             for name, params in configs:
                 trial = Trial(rep_id, name, params)
                 try:
@@ -272,8 +333,9 @@ def tune(
                     scores = bank.detector.score_samples(test.embeddings, test.row_hashes)
                     trial.ms_per_image = embed_ms + 1000 * (time.perf_counter() - t0) / max(1, len(scores))
                     use = choose[readable]
-                    trial.auroc, trial.auroc_ci95 = _auroc_with_ci(labels[readable][use], scores[use])
-                    trial.auroc_se = _auroc_se(labels[readable][use], scores[use])
+                    y, groups = labels[readable][use], [h for h, c in zip(readable_hashes, use) if c]
+                    trial.auroc, trial.auroc_ci95 = auroc_with_ci(y, scores[use], groups)
+                    trial.auroc_se = _auroc_se(y, scores[use], groups)
                     trial.bank, trial.scores, trial.readable = bank, scores, readable
                 except OddlingError as exc:
                     trial.status = f"failed: {exc}"
@@ -289,24 +351,30 @@ def tune(
     # The chosen bank keeps the promise asked for, or says why it cannot (as fit would).
     resolve_rate(chosen.bank.calibration_scores, target_fpr, promise, allow_no_cutoff)
     held = ~choose
-    holdout, holdout_ci = _holdout(chosen, labels, held)
-    result = TuneResult(chosen, board, holdout, holdout_ci,
-                        {"normal": int(((labels == 0) & choose).sum()), "anomalous": int(((labels == 1) & choose).sum())},
-                        {"normal": int(((labels == 0) & held).sum()), "anomalous": int(((labels == 1) & held).sum())},
-                        bank_path, files, stopped, labels)
+    holdout, holdout_ci = _holdout(chosen, labels, held, hashes)
+    result = TuneResult(chosen, board, holdout, holdout_ci, _half_counts(labels, hashes, choose),
+                        _half_counts(labels, hashes, held), bank_path, files, stopped, labels, choose,
+                        labelled.names, labelled.contents, labelled.notes)
     if bank_path is not None:
         save_bank(chosen.bank, bank_path, force=force)
         write_leaderboard(result)
     return result
 
 
-def _holdout(trial: Trial, labels: np.ndarray, held: np.ndarray) -> tuple[float | None, list | None]:
+def _half_counts(labels: np.ndarray, hashes: list, half: np.ndarray) -> dict:
+    counts = content_counts(labels[half], [h for h, inside in zip(hashes, half) if inside])
+    return {"normal": int(((labels == 0) & half).sum()), "anomalous": int(((labels == 1) & half).sum()),
+            "distinct_normal": counts["n_distinct_normal"], "distinct_anomalous": counts["n_distinct_anomalous"]}
+
+
+def _holdout(trial: Trial, labels: np.ndarray, held: np.ndarray, hashes: list) -> tuple[float | None, list | None]:
     # Unreadable labelled files have no score: compare on the readable ones.
-    y, s = labels[trial.readable][held[trial.readable]], trial.scores[held[trial.readable]]
+    use = held[trial.readable]
+    y, s = labels[trial.readable][use], trial.scores[use]
     if not ((y == 0).any() and (y == 1).any()):
         return None, None
-    auc, ci = _auroc_with_ci(y, s)
-    return auc, ci
+    groups = [h for h, ok, inside in zip(hashes, trial.readable, held) if ok and inside]
+    return auroc_with_ci(y, s, groups)
 
 
 def leaderboard_csv(trials: list[Trial]) -> str:
