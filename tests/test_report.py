@@ -206,6 +206,23 @@ def test_bank_too_small_for_the_rate_says_nothing_can_be_flagged(score_run, tmp_
     assert "nothing can be flagged" in _text(next(doc.iter("header")))
 
 
+def test_the_header_states_the_banks_promise_and_its_lowest_p_value(score_run, tmp_path):
+    _, doc = _parse(write_report(tmp_path / "report.html", score_run))
+    header = _text(next(doc.iter("header")))
+    assert "false-alarm rate 5% on average over reference sets (marginal)" in header
+    assert "an image above all 60 calibration scores gets it" in header   # 1/61
+
+
+def test_a_p_value_at_the_floor_says_so_on_its_card(score_run, tmp_path):
+    top = score_run.scored[0]
+    top.above_all = 60
+    _, doc = _parse(write_report(tmp_path / "report.html", score_run))
+    card = next(c for c in _cards(doc) if c.get("data-path") == top.path)
+    assert "(above all 60 calibration scores)" in _text(card)
+    others = [c for c in _cards(doc) if c.get("data-path") != top.path]
+    assert not any("calibration scores)" in _text(c) for c in others)
+
+
 # ---- in a real browser ------------------------------------------------------------------------
 
 @pytest.fixture

@@ -103,3 +103,19 @@ def test_the_confident_guarantee_is_recorded_and_said(digits_folders, tmp_path):
     result = run("fit", digits_folders["reference"], "--bank", tmp_path / "c", "--representation", "pixels:16",
                  "--confidence", "0.8")
     assert result.exit_code == 2 and "--confidence applies to --guarantee confident" in result.stderr
+
+
+def test_p_values_at_the_floor_are_named_in_the_csv_and_the_json(digits_bank, digits_folders, tmp_path):
+    # A conformal p-value is at least 1/(n+1) (Vovk et al. 2005): every image scoring above all 100
+    # calibration scores gets 1/101, and only its score still ranks it.
+    result = run("score", digits_folders["incoming"], "--bank", digits_bank.path, "--out", tmp_path / "s.csv",
+                 "--json")
+    summary = json.loads(result.stdout)
+    assert summary["p_value_floor"] == pytest.approx(1 / 101, abs=1e-6)
+    import csv
+
+    rows = list(csv.DictReader(open(tmp_path / "s.csv", encoding="utf-8")))
+    at_floor = [r for r in rows if r["p_value"] and abs(float(r["p_value"]) - 1 / 101) < 1e-6]
+    assert at_floor and summary["n_at_p_value_floor"] == len(at_floor)
+    assert all(r["status"] == "ok (above all 100 calibration scores)" for r in at_floor)
+    assert not any("calibration scores" in r["status"] for r in rows if r not in at_floor)

@@ -170,7 +170,7 @@ def score(incoming_dir, bank_path, out_csv, target_fpr, as_json, fail_on_flagged
         click.echo(
             f"Scored {summary['n_scored']} of {plural(summary['n_files'], 'file')} "
             f"({summary['n_skipped']} unreadable or skipped); {summary['n_flagged']} flagged at "
-            f"target false-alarm rate {summary['target_fpr']}. Results: {out_csv}", err=True)
+            f"target false-alarm rate {summary['target_fpr']} ({summary['guarantee']}). Results: {out_csv}", err=True)
     if fail_on_flagged and summary["n_flagged"]:
         sys.exit(EXIT_ATTENTION)
 

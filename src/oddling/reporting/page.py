@@ -352,19 +352,23 @@ class _Page:
     def _header(self) -> str:
         b = self.bank
         flagged = sum(bool(r.flagged) for r in self.rows)
+        threshold = b.threshold(self.target_fpr)
         if math.isfinite(self.cutoff):
             cutoff = (f"score &gt; <strong>{_num(self.cutoff)}</strong>, set for a target false-alarm rate of "
-                      f"<strong>{_percent(self.target_fpr)}</strong> on normal images")
+                      f"<strong>{_percent(self.target_fpr)}</strong> on normal images: "
+                      f"{_e(threshold.describe())}")
         else:
-            cutoff = (f"none: {len(b.calibration_scores)} calibration images are too few for a false-alarm "
-                      f"rate of {_percent(self.target_fpr)}, so nothing can be flagged")
+            cutoff = (f"none: {_e(threshold.support_text())}, so nothing can be flagged at a false-alarm "
+                      f"rate of {_percent(self.target_fpr)}")
         facts = [
             ("Scored", _path(self.source_text)) if self.source_text else
             ("Scored folder", f"<code>{_path(self.scored_root)}</code>"),
             ("Files", (f"{len(self.rows)} found, {len(self.scored)} scored, <strong>{flagged} flagged</strong>, "
                        f"{len(self.unreadable)} not scored")),
             ("Flag rule", cutoff),
-            ("Supported rates", _e(supported_rate_text(len(b.calibration_scores)))),
+            ("Supported rates", _e(supported_rate_text(len(b.calibration_scores), b.guarantee))),
+            ("Lowest p-value", _e(f"{threshold.p_floor:.4g}: an image above all {threshold.n} calibration scores "
+                                  "gets it, so order those by score")),
             ("Bank", f"<code>{_path(b.path) if b.path else '(not saved)'}</code>"),
             ("Representation", f"<code>{_e(b.representation.get('id', '?'))}</code>"),
             ("Detector", (f"<code>{_e(b.detector.name)}</code> {_e(_params_text(b.detector.get_params()))}: "
