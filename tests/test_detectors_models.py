@@ -58,19 +58,30 @@ def check_folds_against(det, x, y, reference_scores):
     rel_close(det.anomaly_score(y).scores, np.mean(expected, axis=0))
 
 
-@pytest.mark.parametrize("name", ["gaussian", "pca", "iforest"])
-def test_with_content_hashes_each_image_is_scored_by_one_fold_model(name):
+def test_the_isolation_forest_scores_each_image_with_the_fold_model_its_content_picks():
     from oddling.detectors.base import fold_of_content
 
     rng = np.random.default_rng(12)
     x, y = anisotropic(rng, 80, 6), anisotropic(rng, 40, 6) * 1.2
     hashes = np.array([f"{i:064x}" for i in range(40)])
-    det = make_detector(name).fit(x)
+    det = make_detector("iforest").fit(x)
     chosen = fold_of_content(hashes, N_FOLDS)
     assert set(chosen.tolist()) == set(range(N_FOLDS))            # the models share the images
     expected = [det.models_[k]._score_model(y[i:i + 1])[0] for i, k in enumerate(chosen)]
     np.testing.assert_allclose(det.anomaly_score(y, hashes).scores, expected, rtol=1e-12)
     np.testing.assert_array_equal(det.score_samples(y, hashes), det.anomaly_score(y, hashes).scores)
+    # without hashes: the mean of the fold models (what a caller with bare features gets)
+    mean = np.mean([m._score_model(y) for m in det.models_], axis=0)
+    np.testing.assert_allclose(det.anomaly_score(y).scores, mean, rtol=1e-12)
+
+
+@pytest.mark.parametrize("name", ["gaussian", "pca"])
+def test_gaussian_and_pca_score_the_mean_of_their_fold_models_with_or_without_hashes(name):
+    rng = np.random.default_rng(12)
+    x, y = anisotropic(rng, 80, 6), anisotropic(rng, 40, 6) * 1.2
+    det = make_detector(name).fit(x)
+    mean = np.mean([m._score_model(y) for m in det.models_], axis=0)
+    np.testing.assert_allclose(det.anomaly_score(y, np.array([str(i) for i in range(40)])).scores, mean, rtol=1e-12)
 
 
 # --- Gaussian --------------------------------------------------------------------------------

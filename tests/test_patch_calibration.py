@@ -75,20 +75,14 @@ def test_too_few_distinct_references_for_the_folds_is_a_clear_error():
         PatchKNNDetector(folds=1).fit(x)
 
 
-def test_with_content_hashes_each_new_image_is_scored_by_the_fold_model_its_content_picks():
-    from oddling.detectors.base import fold_of_content
-
+def test_content_hashes_do_not_change_a_patch_score_and_the_map_peaks_near_it():
     rng = np.random.default_rng(4)
     x, y = grids(rng, N), grids(rng, 10) * 1.3
-    hashes = np.array([f"new{i}" for i in range(10)])
     det = PatchKNNDetector(coreset=0.5).fit(x)
-    chosen = fold_of_content(hashes, 5)
-    expected = [worst_location(image, fold_model(det, k)) for image, k in zip(y, chosen)]   # SciPy's cdist
-    got = det.anomaly_score(y, hashes)
-    assert np.all(got.scores <= np.array(expected) * (1 + 1e-5))        # a lower bound at worst
-    np.testing.assert_allclose(got.scores, expected, rtol=2e-2)
-    assert np.allclose(got.maps.reshape(10, -1).max(axis=1), got.scores)  # the map's worst spot is the score
-    np.testing.assert_array_equal(det.anomaly_score(y, hashes).scores, got.scores)   # the same model every time
+    got = det.anomaly_score(y, np.array([f"new{i}" for i in range(10)]))
+    np.testing.assert_array_equal(got.scores, det.anomaly_score(y).scores)
+    # the map is the fold models' mean distance per location: its peak is at most the mean of their peaks
+    assert np.all(got.maps.reshape(10, -1).max(axis=1) <= got.scores + 1e-9)
 
 
 def test_a_bank_written_with_split_calibration_scores_as_before():

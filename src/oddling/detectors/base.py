@@ -146,12 +146,11 @@ def cross_conformal_scores(detector: "CrossConformalDetector", features: np.ndar
     and Artificial Intelligence 2015): each reference is scored by a copy of the detector fitted
     without its fold, as a new image is scored by a detector that never saw it.
 
-    Returns (calibration scores, the K fold models). The fold models are kept, and a new image is
-    scored by one of them (`fold_of_content`): so its score and a reference's come from models
-    fitted on as many references, in the same way. A single model refitted on all references
-    scores new normal images lower than its folds scored the references (it has seen more), and
-    the mean of the K models' scores varies less than one model's: either way the bank would flag
-    fewer than its rate promises (measured in benchmarks/CALIBRATION_RESULTS.md).
+    Returns (calibration scores, the K fold models). The fold models are kept and score new images
+    (`CrossConformalDetector.anomaly_score`), so a new image and a reference are scored by models
+    fitted on as many references. A single model refitted on all references scores new normal
+    images lower than its folds scored the references (it has seen more): PCA flagged a tenth of
+    its rate that way (benchmarks/CALIBRATION_RESULTS.md).
     """
     from oddling.detectors.threads import blas_threads_for
 
@@ -176,8 +175,11 @@ def fold_of_content(groups, n_folds: int) -> np.ndarray:
 
 
 CROSS_CONFORMAL = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
-                   "fold (copies of a file kept in one fold); a new image is scored by one of the "
-                   f"{N_FOLDS} fold models, chosen by its content")
+                   "fold (copies of a file kept in one fold); a new image's score is the mean of the "
+                   f"{N_FOLDS} fold models' scores")
+CROSS_CONFORMAL_PICKED = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
+                          "fold (copies of a file kept in one fold); a new image is scored by one of the "
+                          f"{N_FOLDS} fold models, picked by its content")
 # What banks written before the fold models were kept say: one model refitted on all references.
 REFIT_CROSS_CONFORMAL = (f"{N_FOLDS}-fold cross-conformal: each reference scored by the detector fitted without its "
                          "fold (copies of a file kept in one fold)")
@@ -186,9 +188,14 @@ FOLD_PREFIX = "fold"
 
 class CrossConformalDetector(Detector):
     """A detector whose model has no exact, cheap leave-one-out (Gaussian, PCA, isolation forest):
-    K fold models, each fitted without one fold of the references and calibrated on it. A new image
-    is scored by the fold model its content hash picks (`fold_of_content`); without hashes
-    (`groups` None) by the mean of all K, which flags a little less than the rate promises.
+    K fold models, each fitted without one fold of the references and calibrated on it.
+
+    A new image's score is the mean of the K models' scores, unless `picks_fold_model`: then it is
+    the score of the one model its content hash picks (`fold_of_content`; without hashes, the mean
+    again). The mean ranks best and is a little conservative where the fold models agree closely
+    (Gaussian, PCA); where each model is noisy (the isolation forest's random trees) the mean of
+    five varies much less than the one model that scored each reference, and flags a half to a
+    fifth of the rate, so there one model scores each image.
 
     Subclasses implement, for one model on validated (n, d) arrays: `_fit_model(features) -> self`
     (sets the model's fitted attributes), `_score_model(features) -> (n,) float64`,
@@ -197,11 +204,13 @@ class CrossConformalDetector(Detector):
     refitted on all references; they load as a single model and score as before.
     """
 
+    picks_fold_model: ClassVar[bool] = False
+
     def fit(self, features: np.ndarray, groups: np.ndarray | None = None) -> "CrossConformalDetector":
         features = check_features(features)
         groups = distinct_groups(groups, len(features))
         self.calibration_scores_, self.models_ = cross_conformal_scores(self, features, groups)
-        self.calibration_method_ = CROSS_CONFORMAL
+        self.calibration_method_ = CROSS_CONFORMAL_PICKED if self.picks_fold_model else CROSS_CONFORMAL
         self.n_features_in_ = int(features.shape[1])
         return self
 
@@ -215,7 +224,7 @@ class CrossConformalDetector(Detector):
 
         scores = np.zeros(len(features), dtype=np.float64)
         with blas_threads_for(features.shape, (features.shape[1], features.shape[1])):
-            if groups is None or len(self.models_) == 1:
+            if groups is None or not self.picks_fold_model or len(self.models_) == 1:
                 for model in self.models_:
                     scores += np.asarray(model._score_model(features), dtype=np.float64)
                 return Scores(scores / len(self.models_))

@@ -189,17 +189,18 @@ def score_patches(index: PatchIndex, patch_sources: np.ndarray, features: np.nda
 
 
 def fold_scores(index: PatchIndex, patch_sources: np.ndarray, patch_folds: np.ndarray, n_folds: int,
-                features: np.ndarray, chosen: np.ndarray | None = None) -> PatchScores:
-    """features (n, G*G, C) -> scores against the fold models of a cross-conformal bank.
+                features: np.ndarray) -> PatchScores:
+    """features (n, G*G, C) -> scores against the fold models of a cross-conformal bank: the mean of
+    the K fold models' scores, and the mean of their maps.
 
     Fold model j is the coreset of every fold but j. At each location the nearest patch of the whole
     coreset (fold f, distance d1) is also the nearest of every fold model but f's, whose nearest is
     the first of the FOLD_SEARCH neighbours from another fold (d2; if all come from f, the last one's
-    distance, a lower bound, which can only lower the score). So one search gives every fold
-    model's distances: d1 for j != f, d2 for j = f. `chosen`: the fold model that scores each image
-    (`fold_of_content`); its map and its largest location are the image's. Without it, every fold
-    model's score is averaged (and the maps), which flags a little less than the rate promises.
-    The calibration scores come from the same fold models (`fit_fold_bank`).
+    distance, a lower bound, which can only lower the score). So one search gives every fold model's
+    distances: d1 for j != f, d2 for j = f. Each fold model's score is its largest location, and
+    the calibration scores come from the same fold models (`fit_fold_bank`). The mean ranks as well
+    as the whole coreset (measured: the same AUROC on the brick and fabric cases, where one fold
+    model per image lost 0.01-0.02) and flags a little less than the rate promises.
     """
     n, locations, dim = features.shape
     grid = int(round(np.sqrt(locations)))
@@ -213,21 +214,11 @@ def fold_scores(index: PatchIndex, patch_sources: np.ndarray, patch_folds: np.nd
     d1 = dist[:, 0].reshape(n, locations)
     d2 = dist[np.arange(len(dist)), second].reshape(n, locations)
     nearest_fold = folds[:, 0].reshape(n, locations)
-    # at each location, the nearest patch of the image's model: another fold's when the overall nearest is its own
-    second_rows = rows[np.arange(len(rows)), second].reshape(n, locations)
-    first_rows = rows[:, 0].reshape(n, locations)
-    if chosen is None:
-        maps = np.stack([np.where(nearest_fold == j, d2, d1) for j in range(n_folds)]).mean(axis=0)
-        scores = np.stack([np.where(nearest_fold == j, d2, d1).max(axis=1) for j in range(n_folds)]).mean(axis=0)
-        match = first_rows
-    else:
-        own = nearest_fold == np.asarray(chosen)[:, None]
-        maps = np.where(own, d2, d1)
-        scores = maps.max(axis=1)
-        match = np.where(own, second_rows, first_rows)
+    per_fold = np.stack([np.where(nearest_fold == j, d2, d1).max(axis=1) for j in range(n_folds)], axis=1)
+    maps = d1 + (d2 - d1) / n_folds          # the mean over the fold models at each location
     worst = maps.argmax(axis=1)
-    sources = np.asarray(patch_sources)[match[np.arange(n), worst]]
-    return PatchScores(scores, maps.reshape(n, grid, grid), sources)
+    sources = np.asarray(patch_sources)[rows[:, 0].reshape(n, locations)[np.arange(n), worst]]
+    return PatchScores(per_fold.mean(axis=1), maps.reshape(n, grid, grid), sources)
 
 
 def upsample_map(grid_map: np.ndarray, size: tuple[int, int], crop: int = 224, sigma: float = MAP_SIGMA) -> np.ndarray:
@@ -305,8 +296,7 @@ def fit_fold_bank(features: np.ndarray, folds: np.ndarray, n_folds: int, fractio
                     len(features) * locations)
 
 
-from oddling.detectors.base import (Detector, Scores, check_features, check_fitted, distinct_groups,  # noqa: E402
-                                    fold_of_content)
+from oddling.detectors.base import Detector, Scores, check_features, check_fitted, distinct_groups  # noqa: E402
 from oddling.errors import OddlingError  # noqa: E402
 
 
@@ -391,9 +381,7 @@ class PatchKNNDetector(Detector):
         if self.fold_starts_ is None:
             ps = score_patches(index, self.sources_, features)
         else:
-            n_folds = len(self.fold_starts_) - 1
-            chosen = None if groups is None else fold_of_content(distinct_groups(groups, len(features)), n_folds)
-            ps = fold_scores(index, self.sources_, self._patch_folds(), n_folds, features, chosen)
+            ps = fold_scores(index, self.sources_, self._patch_folds(), len(self.fold_starts_) - 1, features)
         return Scores(ps.scores, ps.worst_source[:, None], ps.scores[:, None], ps.maps)
 
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:
@@ -448,14 +436,13 @@ class PatchKNNDetector(Detector):
             return ("largest distance (Euclidean, in feature units) from any location of the image to its nearest "
                     "reference patch; the map shows it per location")
         return ("largest distance (Euclidean, in feature units) from any location of the image to its nearest "
-                "reference patch of the fold model the image's content picks (the coreset of all references but "
-                "one fold); the map shows the distance per location")
+                "reference patch, averaged over the fold models (each the coreset of all references but one fold); "
+                "the map shows the distance per location")
 
 
 def cross_conformal_method(n_folds: int) -> str:
     return (f"{n_folds}-fold cross-conformal: each reference scored against the coreset of the other folds (copies "
-            f"of a file kept in one fold); a new image is scored by one of those {n_folds} fold models, chosen by "
-            "its content")
+            f"of a file kept in one fold); a new image's score is the mean over those {n_folds} fold models")
 
 
 SPLIT_CALIBRATION = ("split conformal: a seeded share of the references held out and scored against the coreset "
