@@ -1,8 +1,8 @@
 """Calibration validity: do the detectors' flags hold the false-alarm rate on real normal images?
 
-    python benchmarks/bench_calibration.py --out benchmarks/CALIBRATION_RESULTS.md   # ~20 minutes on 2 cores
+    python benchmarks/bench_calibration.py --out benchmarks/CALIBRATION_RESULTS.md   # ~25 minutes on 2 cores
     python benchmarks/bench_calibration.py --quick                                  # smoke run, ~1 minute
-    python benchmarks/bench_calibration.py --detectors knn,gaussian --splits 40     # one change, measured
+    python benchmarks/bench_calibration.py --detectors gaussian --references 100 --splits 60   # one detector, closer
 
 What it does:
   1. Cuts one folder of normal images per case: seeded random square crops (96-160 px, random
