@@ -38,8 +38,9 @@ What it does:
        estimated from its few hundred fresh normals, so the realized share mixes the banks' true
        rates with that counting noise; the exact method's expected share includes the same noise.
 
-Detectors (their own default calibration): knn (leave-one-out), patch-knn (split: 20% of the
-references held out), gaussian, pca (variance 0.95 and 0.99), iforest (5-fold cross-conformal).
+Detectors (their own default calibration): knn (leave-one-out), patch-knn, gaussian, pca
+(variance 0.95 and 0.99), iforest (5-fold cross-conformal, fold models kept; new images scored by
+their mean, or for iforest by the fold model the content hash picks, as `oddling score` does).
 patch-knn fits are slow (greedy coreset: ~4 s at 100 references, ~20 s at 200, one thread), so it
 scores at most `PATCH_FRESH` fresh normals per split and is fitted at the larger reference counts
 on the first case only, unless `--patch-all-cases`.
@@ -188,11 +189,14 @@ def split(n_images: int, n_references: int, seed: int, index: int) -> tuple[np.n
 
 
 def threshold_variants() -> list[tuple[str, dict]]:
-    """The calibration guarantees `ConformalThreshold` offers: marginal always; "confident" when
+    """The calibration guarantees `ConformalThreshold` offers: marginal, and "confident" at 0.9.
+    (Written when "confident" was still to come; kept general.) Marginal always; "confident" when
     its constructor takes a `guarantee` keyword (added by another change)."""
     variants = [("marginal", {})]
     if "guarantee" in inspect.signature(ConformalThreshold).parameters:
-        variants.append(("confident 0.9", {"guarantee": "confident", "confidence": 0.9}))
+        from oddling.detectors.conformal import Guarantee
+
+        variants.append(("confident 0.9", {"guarantee": Guarantee("confident", 0.9)}))
     return variants
 
 
@@ -222,7 +226,7 @@ def measure_bank(run: DetectorRun, features: np.ndarray, groups: np.ndarray, ref
     """Fit once, score the fresh normals once, then flag at every alpha and guarantee."""
     detector = make_detector(run.name, run.params).fit(features[references], groups[references])
     calibration = np.asarray(detector.calibration_scores_, dtype=np.float64)
-    scores = detector.anomaly_score(features[fresh]).scores
+    scores = detector.anomaly_score(features[fresh], groups[fresh]).scores   # hashes: as the jobs pass them
     results = []
     for alpha in ALPHAS:
         for guarantee, keywords in variants:
@@ -499,8 +503,8 @@ NOTES = """## How to read this
   exact method's pooled rate 29% of the time, the split-aware range 1.2%.) Under a stricter
   guarantee ("confident"), a rate well below alpha is the point: its binomial verdict says how
   much lower, the split-aware one still checks the detector.
-- "calib. scores": how many calibration scores a bank has (patch-knn holds 20% of the
-  references out). A bank with fewer than 1/alpha - 1 cannot flag anything at that alpha.
+- "calib. scores": how many calibration scores a bank has (every detector calibrates on all
+  references now). A bank with fewer than 1/alpha - 1 cannot flag anything at that alpha.
 - Table 2: a split's rate is estimated from its fresh normals (a few hundred), so "splits above
   alpha" mixes the banks' true rates with counting noise; the exact method's expected share
   includes the same noise, its "share of true rates > alpha" does not.
