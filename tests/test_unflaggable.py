@@ -119,3 +119,12 @@ def test_p_values_at_the_floor_are_named_in_the_csv_and_the_json(digits_bank, di
     assert at_floor and summary["n_at_p_value_floor"] == len(at_floor)
     assert all(r["status"] == "ok (above all 100 calibration scores)" for r in at_floor)
     assert not any("calibration scores" in r["status"] for r in rows if r not in at_floor)
+
+
+def test_a_patch_bank_of_100_references_can_flag_at_one_percent(digits_folders, tmp_path):
+    # Cross-conformal calibration scores every reference: 100 scores, and 0.01 needs 99 (1/(n+1) <= a).
+    result = run("fit", digits_folders["reference"], "--bank", tmp_path / "p", "--detector", "patch-knn",
+                 "--target-fpr", "0.01")
+    assert result.exit_code == 0, result.output
+    bank = oddling.load_bank(tmp_path / "p")
+    assert bank.size == 100 and bank.calibration["n"] == 100 and bank.calibration["cutoff"] is not None
