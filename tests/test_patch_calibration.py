@@ -97,3 +97,17 @@ def test_a_bank_written_with_split_calibration_scores_as_before():
     expected = score_patches(PatchIndex(patches), arrays["sources"], y).scores
     np.testing.assert_array_equal(det.anomaly_score(y, np.array(["a", "b", "c"])).scores, expected)
     assert det.state()[1].keys() == arrays.keys()
+
+
+def test_the_coreset_is_capped_and_large_sets_are_greedy_on_a_seeded_pool(monkeypatch):
+    import oddling.detectors.patch as patch
+
+    rng = np.random.default_rng(6)
+    points = rng.standard_normal((400, CHANNELS)).astype(np.float32)
+    assert len(patch.coreset(points, 0.5, max_centers=10)) == 10
+    monkeypatch.setattr(patch, "GREEDY_POOL", 100)
+    kept = patch.coreset(points, 0.05, seed=3)                 # 20 centres from a pool of max(100, 160) = 160
+    assert len(kept) == 20 and len(set(kept.tolist())) == 20
+    np.testing.assert_array_equal(kept, patch.coreset(points, 0.05, seed=3))   # seeded
+    det = PatchKNNDetector(coreset=1.0, max_patches=40).fit(grids(rng, N))
+    assert len(det.patches_) <= 40 and det.n_patches_ == N * LOCATIONS

@@ -20,3 +20,10 @@ def blas_threads_for(*shapes: tuple[int, ...]):
     from threadpoolctl import threadpool_limits
 
     return threadpool_limits(limits=1, user_api="blas")
+
+
+def one_blas_thread():
+    """A context in which BLAS uses one thread: for loops of many small products."""
+    from threadpoolctl import threadpool_limits
+
+    return threadpool_limits(limits=1, user_api="blas")

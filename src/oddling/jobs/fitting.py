@@ -19,6 +19,7 @@ from oddling.errors import OddlingError
 from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
                                  no_images_message, refuse_existing, warn_if_few_calibration)
 from oddling.numbers import json_number
+from oddling.progress import progress_shown
 
 DEFAULT_REPRESENTATION = "efficientnet-lite0"
 RULE = "flagged when score > cutoff, i.e. conformal p-value <= target_fpr"
@@ -227,7 +228,8 @@ def fit(
     rep = load_representation(spec, options.cache_dir, options.runtime)
     exclude = (Path(bank_path),) if bank_path is not None else ()
     embedded = embed_folder(reference_dir, rep, options, "embedding references", exclude)
-    bank = build_bank(embedded, rep, model, target_fpr, reference_dir, vector_dtype, promise, allow_no_cutoff)
+    with progress_shown(options.progress):    # the detector's long phases (a patch coreset) show bars too
+        bank = build_bank(embedded, rep, model, target_fpr, reference_dir, vector_dtype, promise, allow_no_cutoff)
     if bank_path is not None:
         save_bank(bank, bank_path, force=force)
     return bank
