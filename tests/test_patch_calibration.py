@@ -111,3 +111,17 @@ def test_the_coreset_is_capped_and_large_sets_are_greedy_on_a_seeded_pool(monkey
     np.testing.assert_array_equal(kept, patch.coreset(points, 0.05, seed=3))   # seeded
     det = PatchKNNDetector(coreset=1.0, max_patches=40).fit(grids(rng, N))
     assert len(det.patches_) <= 40 and det.n_patches_ == N * LOCATIONS
+
+
+def test_above_the_calibration_sample_a_seeded_sample_is_scored(monkeypatch):
+    import oddling.detectors.patch as patch
+
+    monkeypatch.setattr(patch, "CALIBRATION_SAMPLE", 12)
+    rng = np.random.default_rng(7)
+    x = grids(rng, N)
+    det = PatchKNNDetector(coreset=0.5).fit(x)
+    rows = patch.calibration_rows(N, 0)
+    assert len(det.calibration_scores_) == 12 and "a seeded sample of 12 of the 30 references" in det.calibration_method_
+    folds = group_folds(distinct_groups(None, N), 5, 0)
+    for score, i in zip(det.calibration_scores_, rows):     # still each by the fold model that never saw it
+        assert score == pytest.approx(worst_location(x[i], fold_model(det, folds[i])), rel=1e-5)

@@ -32,6 +32,10 @@ MAP_SIGMA = 4.0             # pixels of the network input (PatchCore smooths at 
 N_FOLDS = 5
 MAX_PATCHES = 16384        # the coreset's size at most: scoring cost is locations x coreset patches
 GREEDY_POOL = 50_000       # greedy k-center candidates at least (see `coreset`)
+# Above this many references, a seeded sample of this many is scored for calibration (as the kNN
+# detector samples above 20,000): 2,000 scores support rates down to 1/2,001, and the cost stops
+# growing with the references.
+CALIBRATION_SAMPLE = 2000
 # Neighbours looked up per location when scoring: enough that one of them nearly always comes from
 # another fold than the nearest (see `fold_scores`).
 FOLD_SEARCH = 4
@@ -313,15 +317,26 @@ def fit_fold_bank(features: np.ndarray, folds: np.ndarray, n_folds: int, fractio
             starts.append(starts[-1] + len(keep))
             shown.update(1)
     patches, starts = np.concatenate(parts), np.asarray(starts, dtype=np.int64)
-    calibration = np.empty(n, dtype=np.float64)
-    with bar(n, "patch calibration", "ref") as shown:
+    scored = calibration_rows(n, seed)
+    calibration = np.full(n, np.nan)
+    with bar(len(scored), "patch calibration", "ref") as shown:
         for fold in range(n_folds):
-            held = np.flatnonzero(folds == fold)
+            held = scored[folds[scored] == fold]
+            if not len(held):
+                continue
             index = PatchIndex(np.concatenate([patches[:starts[fold]], patches[starts[fold + 1]:]]))
             for chunk in np.array_split(held, max(1, len(held) // 64)):   # the bar moves as references are scored
                 calibration[chunk] = score_patches(index, np.zeros(index.size, np.int64), features[chunk]).scores
                 shown.update(len(chunk))
-    return FoldBank(patches, np.concatenate(sources).astype(np.int64), starts, calibration, n * locations)
+    return FoldBank(patches, np.concatenate(sources).astype(np.int64), starts, calibration[scored], n * locations)
+
+
+def calibration_rows(n: int, seed: int = SEED) -> np.ndarray:
+    """The references scored for calibration: all of them, or above CALIBRATION_SAMPLE a seeded
+    sample of that many, in row order."""
+    if n <= CALIBRATION_SAMPLE:
+        return np.arange(n)
+    return np.sort(np.random.default_rng([seed, n]).choice(n, CALIBRATION_SAMPLE, replace=False))
 
 
 from oddling.detectors.base import Detector, Scores, check_features, check_fitted, distinct_groups  # noqa: E402
@@ -399,7 +414,7 @@ class PatchKNNDetector(Detector):
         self.calibration_scores_ = bank.calibration_scores
         self.n_patches_ = int(bank.n_patches)
         self.grid_ = int(round(np.sqrt(features.shape[1])))
-        self.calibration_method_ = cross_conformal_method(self.folds)
+        self.calibration_method_ = cross_conformal_method(self.folds, len(self.calibration_scores_), len(features))
         return self
 
     def _patch_folds(self) -> np.ndarray:
@@ -474,8 +489,10 @@ class PatchKNNDetector(Detector):
                 "the map shows the distance per location")
 
 
-def cross_conformal_method(n_folds: int) -> str:
-    return (f"{n_folds}-fold cross-conformal: each reference scored against the coreset of the other folds (copies "
+def cross_conformal_method(n_folds: int, n_calibration: int | None = None, n: int | None = None) -> str:
+    who = ("each reference" if n_calibration is None or n_calibration == n else
+           f"a seeded sample of {n_calibration} of the {n} references, each")
+    return (f"{n_folds}-fold cross-conformal: {who} scored against the coreset of the other folds (copies "
             f"of a file kept in one fold); a new image's score is the mean over those {n_folds} fold models")
 
 
