@@ -27,6 +27,7 @@ import json
 import os
 import sys
 import time
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -39,7 +40,8 @@ from oddling.detectors import make_detector
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.evaluation.metrics import CI_METHOD, content_counts
-from oddling.jobs.common import RunOptions, check_rate, embed_paths, folder, refuse_existing
+from oddling.jobs.common import (OddlingWarning, RunOptions, check_rate, embed_paths, folder, refuse_existing,
+                                 warn_if_few_calibration)
 from oddling.jobs.evaluation import attach_labels, copies_notes
 from oddling.reporting.results import ScoreRow, json_number, write_text
 
@@ -326,8 +328,10 @@ def tune(
             for name, params in configs:
                 trial = Trial(rep_id, name, params)
                 try:
-                    bank = build_bank(refs, representation, make_detector(name, params), target_fpr, reference_dir,
-                                      guarantee=promise, allow_no_cutoff=True)
+                    with warnings.catch_warnings():   # said once, for the chosen bank, after the bar is gone
+                        warnings.simplefilter("ignore", OddlingWarning)
+                        bank = build_bank(refs, representation, make_detector(name, params), target_fpr,
+                                          reference_dir, guarantee=promise, allow_no_cutoff=True)
                     trial.supports_target = bank.threshold().can_flag
                     t0 = time.perf_counter()
                     scores = bank.detector.score_samples(test.embeddings, test.row_hashes)
@@ -350,6 +354,8 @@ def tune(
                            + next((t.status for t in trials if t.status != "ok"), "none"))
     # The chosen bank keeps the promise asked for, or says why it cannot (as fit would).
     resolve_rate(chosen.bank.calibration_scores, target_fpr, promise, allow_no_cutoff)
+    if chosen.bank.threshold().can_flag:
+        warn_if_few_calibration(chosen.bank.threshold(), stacklevel=2)
     held = ~choose
     holdout, holdout_ci = _holdout(chosen, labels, held, hashes)
     result = TuneResult(chosen, board, holdout, holdout_ci, _half_counts(labels, hashes, choose),
