@@ -139,7 +139,7 @@ def _stub_embed(root, paths, cache):
 
 
 def _oddling_warnings(record) -> list[str]:
-    from oddling.jobs.common import OddlingWarning
+    from oddling.errors import OddlingWarning
 
     return [str(w.message) for w in record if issubclass(w.category, OddlingWarning)]
 
@@ -739,7 +739,7 @@ def _crash_a_save(tmp_path, where: str) -> Path:
 
 def test_a_crash_between_the_two_renames_is_undone_on_the_next_load(tmp_path):
     from oddling.bank.store import load_bank
-    from oddling.jobs.common import OddlingWarning
+    from oddling.errors import OddlingWarning
 
     target = _crash_a_save(tmp_path, "between renames")
     assert not target.exists()                                         # the state the crash left
@@ -1015,7 +1015,7 @@ def test_a_half_replaced_bank_that_cannot_be_put_back_is_one_clear_error(tmp_pat
 def test_a_bank_saved_when_its_undo_copy_cannot_be_kept_warns_and_is_saved(tmp_path, monkeypatch):
     import oddling.bank.store as store
     from oddling.bank.store import load_bank
-    from oddling.jobs.common import OddlingWarning
+    from oddling.errors import OddlingWarning
     from test_bank import small_bank
 
     target = _versions(tmp_path, "1")

@@ -45,7 +45,7 @@ from oddling.data.health import STATS
 from oddling.detectors import make_detector
 from oddling.detectors.base import Detector
 from oddling.detectors.conformal import GUARANTEES, ConformalThreshold, Guarantee
-from oddling.errors import OddlingError
+from oddling.errors import OddlingError, OddlingWarning
 
 FORMAT_NAME = "oddling-bank"
 FORMAT_VERSION = 2
@@ -423,8 +423,6 @@ def _mtime(path: Path) -> float:
 
 def _warn(message: str) -> None:
     import warnings
-
-    from oddling.jobs.common import OddlingWarning   # lazily: jobs sit above the bank
 
     warnings.warn(message, OddlingWarning, stacklevel=3)
 

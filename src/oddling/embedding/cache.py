@@ -57,6 +57,7 @@ from pathlib import Path
 import numpy as np
 
 from oddling.data.health import STATS
+from oddling.errors import OddlingWarning
 
 FLUSH_EVERY = 256        # new vectors per transaction: bounds the work lost to a hard kill
 KEY_FILE = "cache.key"   # the secret that signs this cache's rows
@@ -80,8 +81,6 @@ CREATE TABLE IF NOT EXISTS features (
 
 
 def _warn(message: str) -> None:
-    from oddling.jobs.common import OddlingWarning   # lazily: jobs sit above embedding
-
     warnings.warn(message, OddlingWarning, stacklevel=3)
 
 

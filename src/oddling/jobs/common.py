@@ -8,11 +8,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from oddling.detectors.conformal import min_calibration_size, smallest_supported_rate
-from oddling.errors import OddlingError
-
-
-class OddlingWarning(UserWarning):
-    """Something the user should know but that does not stop the job."""
+from oddling.errors import OddlingError, OddlingWarning
 
 
 @dataclass
