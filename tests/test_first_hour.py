@@ -142,7 +142,7 @@ def test_score_out_checks_share_the_helper(digits_bank, tmp_path):
 
 
 def test_check_output_rules(tmp_path):
-    from oddling.jobs.common import check_output
+    from oddling.files import check_output
 
     assert check_output(None, force=False) is None
     assert check_output(tmp_path / "a" / "b.png", force=False, suffix=".png") == tmp_path / "a" / "b.png"

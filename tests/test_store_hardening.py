@@ -74,7 +74,7 @@ def leftovers(folder: Path, keep=()) -> list[str]:
 # --- 1. a full disk -----------------------------------------------------------------------------
 
 def test_csv_on_a_full_disk_is_a_clear_error_and_leaves_no_partial_file(tmp_path, monkeypatch):
-    from oddling.reporting.results import write_text
+    from oddling.files import write_text
 
     (tmp_path / "scores.csv").write_text("old\n")
     full_disk(monkeypatch, tmp_path)
@@ -86,7 +86,7 @@ def test_csv_on_a_full_disk_is_a_clear_error_and_leaves_no_partial_file(tmp_path
 
 
 def test_csv_written_to_dev_full_is_a_clear_error(tmp_path):
-    from oddling.reporting.results import write_text
+    from oddling.files import write_text
 
     if not os.path.exists("/dev/full"):
         pytest.skip("needs /dev/full (Linux)")
@@ -984,7 +984,7 @@ def _dead_pid() -> int:
 
 def test_partial_files_of_killed_writers_are_removed_on_the_next_write(tmp_path):
     from oddling.embedding.cache import EmbeddingCache
-    from oddling.reporting.results import write_text
+    from oddling.files import write_text
 
     dead, alive = _dead_pid(), os.getppid()
     for pid in (dead, alive):

@@ -14,7 +14,8 @@ from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, ban
                                 dask_option, run_options, target_fpr_override, user_errors)
 from oddling.errors import OddlingError
 from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
-from oddling.jobs.common import check_output, plural, refuse_existing
+from oddling.files import check_output, refuse_existing
+from oddling.jobs.common import plural
 
 
 def parse_params(pairs: tuple[str, ...]) -> dict:

@@ -12,7 +12,6 @@ from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, ban
 from oddling.backbones import DEFAULT_BACKBONE
 from oddling.backbones import manifest as backbone_manifest
 from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
 
 cache_option = click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
                             help="Cache folder [default: $ODDLING_CACHE_DIR or the user cache folder].")

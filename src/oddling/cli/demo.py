@@ -11,7 +11,6 @@ from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, ban
                                 target_fpr_override, user_errors)
 from oddling.backbones import DEFAULT_BACKBONE, load_manifest
 from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
 
 @click.command()
 @click.argument("directory", type=click.Path(file_okay=False, path_type=Path), default=Path("oddling-demo"))

@@ -11,7 +11,8 @@ from oddling.cli.common import (BANK_PATH, EXIT_ATTENTION, _num, _options, _prin
                                 run_options, target_fpr_override, user_errors)
 from oddling.errors import OddlingError
 from oddling.data.intake import display_path
-from oddling.jobs.common import check_output, plural
+from oddling.files import check_output
+from oddling.jobs.common import plural
 from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 
 @click.command()

@@ -58,6 +58,7 @@ import numpy as np
 
 from oddling.data.health import STATS
 from oddling.errors import OddlingWarning
+from oddling.files import remove_stale_partials
 
 FLUSH_EVERY = 256        # new vectors per transaction: bounds the work lost to a hard kill
 KEY_FILE = "cache.key"   # the secret that signs this cache's rows
@@ -514,7 +515,8 @@ class EmbeddingCache:
         """Move the rows of earlier releases' chunk files into the database, once (see the module doc)."""
         if not self.writable:
             return
-        self._remove_stale_partials()
+        # half-written chunks of earlier releases' processes that were killed (`.chunk-*.npz.partial-PID`)
+        remove_stale_partials(self.folder, ".chunk-*.npz.partial-*")
         damaged: list[tuple[Path, str]] = []
         for path in sorted(self.folder.glob("chunk-*.npz")):
             try:
@@ -535,18 +537,6 @@ class EmbeddingCache:
                 pass
         if damaged:
             self._drop(damaged, report)
-
-    def _remove_stale_partials(self) -> None:
-        """Half-written chunks of earlier releases' processes that were killed (`.chunk-*.npz.partial-PID`)."""
-        from oddling.bank.store import pid_alive
-
-        for path in self.folder.glob(".chunk-*.npz.partial-*"):
-            pid = path.name.rsplit("-", 1)[-1]
-            if pid.isdigit() and not pid_alive(int(pid)):
-                try:
-                    path.unlink()
-                except OSError:
-                    pass
 
     def _chunk_signature(self, hashes, vectors: np.ndarray, health: np.ndarray) -> str:
         """The earlier releases' HMAC-SHA256 of a whole chunk: cache key, content hashes, vectors, health rows."""

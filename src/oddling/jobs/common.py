@@ -47,40 +47,6 @@ def folder(path, what: str) -> Path:
     return found
 
 
-def refuse_existing(*paths, force: bool) -> None:
-    """The one "already exists" check: outputs are checked before any work starts, so a refusal costs nothing."""
-    for path in paths:
-        if path is not None and Path(path).exists() and not force:
-            raise OddlingError(f"{path} already exists; pass --force to replace it")
-
-
-def check_output(path, *, force: bool, suffix: str | None = None, option: str = "output",
-                 example: str | None = None) -> Path | None:
-    """The one output-path check for a file a command writes, made before any work starts.
-
-    Refused with OddlingError: a folder (name a file in it instead: `example`), a name without
-    `suffix` where the writer needs one (a plot is PNG), an existing file unless `force` (the
-    "already exists" rule of refuse_existing), and a path below something that is not a folder.
-    Missing parent folders are fine: the writers create them. None passes through (option not given).
-    """
-    if path is None:
-        return None
-    path = Path(path)
-    wanted = f"a file name ending in {suffix}" if suffix else "a file name"
-    if path.is_dir():
-        raise OddlingError(f"{option} {path} is a folder; give {wanted}, e.g. {path / (example or 'output' + (suffix or ''))}")
-    if suffix is not None and path.suffix.lower() != suffix:
-        raise OddlingError(f"{option} {path}: give {wanted} (this writer makes {suffix[1:].upper()} files), "
-                           f"e.g. {path.with_suffix(suffix) if path.suffix else path.with_name(path.name + suffix)}")
-    refuse_existing(path, force=force)
-    parent = path.parent
-    while not parent.exists() and parent != parent.parent:
-        parent = parent.parent
-    if parent.exists() and not parent.is_dir():
-        raise OddlingError(f"{option} {path}: {parent} is a file, not a folder")
-    return path
-
-
 def plural(n: int, word: str, many: str | None = None) -> str:
     """"1 reference", "2 references": the count with the word in the right number."""
     return f"{n} {word if n == 1 else (many or word + 's')}"

@@ -12,7 +12,8 @@ from oddling.bank.store import Bank
 from oddling.errors import OddlingError
 from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, load_bank_representation, plural
 from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
-from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows, write_text
+from oddling.files import refuse_existing, write_text
+from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows
 
 
 @dataclass
@@ -38,11 +39,9 @@ class EvaluationResult:
 
         out = Path(out_dir)
         names = {"metrics": "metrics.json", "scores": "scores.csv", "roc": "roc.png", "pr": "pr.png"}
-        clash = [n for n in names.values() if (out / n).exists()]
-        if clash and not force:
-            raise OddlingError(f"{out} already holds {', '.join(clash)}; pass --force to replace them")
-        out.mkdir(parents=True, exist_ok=True)
         paths = {key: out / name for key, name in names.items()}
+        refuse_existing(*paths.values(), force=force)
+        out.mkdir(parents=True, exist_ok=True)
         write_text(paths["metrics"], json.dumps(self.metrics, indent=2, sort_keys=True) + "\n", force=True)
         write_text(paths["scores"], rows_to_csv(self.rows, with_labels=True), force=True)
         fpr, tpr, _ = m.roc_curve(self.labels, self.scores)

@@ -16,8 +16,9 @@ from oddling.detectors import DEFAULT_DETECTOR, make_detector
 from oddling.detectors.conformal import DEFAULT_RATES, MARGINAL, ConformalThreshold, Guarantee, default_rate
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
+from oddling.files import refuse_existing
 from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
-                                 no_images_message, refuse_existing, warn_if_few_calibration)
+                                 no_images_message, warn_if_few_calibration)
 from oddling.numbers import json_number
 
 DEFAULT_REPRESENTATION = "efficientnet-lite0"

@@ -13,7 +13,8 @@ from oddling.detectors.base import Scores
 from oddling.errors import OddlingError
 from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
                                  load_bank_representation, warn_if_few_calibration, warn_if_other_encoding)
-from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows, write_text
+from oddling.files import write_text
+from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows
 
 
 def as_bank(bank: Bank | str | os.PathLike) -> Bank:

@@ -39,9 +39,10 @@ from oddling.detectors import make_detector
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.evaluation.metrics import CI_METHOD, content_counts
-from oddling.jobs.common import RunOptions, check_rate, embed_paths, folder, refuse_existing
+from oddling.files import refuse_existing, write_text
+from oddling.jobs.common import RunOptions, check_rate, embed_paths, folder
 from oddling.jobs.evaluation import attach_labels, copies_notes
-from oddling.reporting.results import ScoreRow, json_number, write_text
+from oddling.reporting.results import ScoreRow, json_number
 
 MIN_PER_CLASS = 10     # below this an AUROC, let alone a choice between configurations, means little
 TIE = 0.005            # AUROC differences this small are noise at the usual test-set sizes

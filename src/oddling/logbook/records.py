@@ -217,11 +217,10 @@ def _cell(column: str, value) -> str:
 def export_rows(rows: list[LogRow], out: str | os.PathLike, force: bool = False) -> Path:
     """Write rows to `out`: CSV (text cells as in the scores CSV: formula-safe, RFC 4180 quoting), or
     Parquet for a .parquet name (needs pyarrow)."""
-    from oddling.reporting.results import write_text
+    from oddling.files import refuse_existing, write_text
 
     out = Path(out)
-    if out.exists() and not force:
-        raise OddlingError(f"{out} already exists; pass --force to overwrite it")
+    refuse_existing(out, force=force)
     if out.suffix.lower() == ".parquet":
         try:
             import pyarrow as pa

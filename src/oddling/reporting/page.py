@@ -26,7 +26,8 @@ from oddling.bank.store import Bank
 from oddling.errors import OddlingError
 from oddling.data.intake import IntakeError, display_path, load_rgb
 from oddling.jobs.common import supported_rate_text
-from oddling.reporting.results import ScoreRow, sort_rows, write_text
+from oddling.files import refuse_existing, write_text
+from oddling.reporting.results import ScoreRow, sort_rows
 
 def _asset(name: str) -> str:
     """The page's CSS and JavaScript live as package files beside this module (reporting/assets/)."""
@@ -106,9 +107,7 @@ def write_report(
 
     plots = plots_folder(out_html)
     plot_names = [HISTOGRAM_FILE] + ([ROC_FILE, PR_FILE] if metrics is not None else [])
-    clash = [p for p in [out_html] + [plots / n for n in plot_names] if p.exists()]
-    if clash and not force:
-        raise OddlingError(f"{clash[0]} already exists; pass --force to overwrite it")
+    refuse_existing(out_html, *[plots / n for n in plot_names], force=force)
 
     rows = sort_rows(list(result.rows))
     scored = [r for r in rows if r.score is not None]

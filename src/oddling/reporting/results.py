@@ -1,13 +1,9 @@
 """Per-file results and their files: the scores CSV (sorted, every input accounted for) and the JSON summary."""
 from __future__ import annotations
 
-import errno
 import math
-import os
 import re
 from dataclasses import dataclass, field
-from glob import escape as glob_escape
-from pathlib import Path
 
 from oddling.data.intake import display_path, path_from_display
 from oddling.embedding.runner import OK
@@ -108,50 +104,6 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
             line += ["" if r.label is None else ("anomalous" if r.label else "normal"), csv_text(r.kind or "")]
         lines.append(line)
     return "".join(",".join(_field(cell) for cell in line) + "\n" for line in lines)
-
-
-def _remove_stale_partials(path: Path) -> None:
-    """`.NAME.partial-PID` files that writers killed midway left beside `path`."""
-    from oddling.bank.store import pid_alive
-
-    for stale in path.parent.glob(f".{glob_escape(path.name)}.partial-*"):
-        pid = stale.name.rsplit("-", 1)[-1]
-        if pid.isdigit() and not pid_alive(int(pid)):
-            try:
-                stale.unlink()
-            except OSError:
-                pass
-
-
-def write_text(path: Path, text: str, force: bool = False) -> Path:
-    """Write a result file, refusing to replace an existing one unless asked."""
-    path = Path(path)
-    if path.exists() and not force:
-        from oddling.errors import OddlingError
-
-        raise OddlingError(f"{path} already exists; pass --force to overwrite it")
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    _remove_stale_partials(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        with open(tmp, "w", encoding="utf-8") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())   # a full disk may only say so here
-        os.replace(tmp, path)
-    except BaseException as exc:
-        try:
-            tmp.unlink(missing_ok=True)
-        except OSError:
-            pass
-        if not isinstance(exc, OSError):
-            raise
-        from oddling.errors import OddlingError
-
-        if exc.errno == errno.ENOSPC:
-            raise OddlingError(f"no space left on device while writing {path}; nothing was replaced") from exc
-        raise OddlingError(f"could not write {path} ({exc.strerror or exc}); nothing was replaced") from exc
-    return path
 
 
 def count_ok(rows: list[ScoreRow]) -> int:
