@@ -417,7 +417,7 @@ def main() -> None:
     variants = threshold_variants()
 
     from oddling.backbones.representation import load_representation
-    from oddling.jobs.common import RunOptions
+    from oddling.embedding.options import RunOptions
 
     started = time.perf_counter()
     results: list[BankResult] = []

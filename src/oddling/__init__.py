@@ -13,7 +13,7 @@ from oddling.errors import OddlingError, OddlingWarning  # noqa: E402  (light: n
 
 _LAZY = {
     "EvaluationResult": "oddling.jobs.evaluation", "evaluate": "oddling.jobs.evaluation",
-    "RunOptions": "oddling.jobs.common",
+    "RunOptions": "oddling.embedding.options",
     "ScoreResult": "oddling.jobs.scoring", "score": "oddling.jobs.scoring",
     "audit": "oddling.jobs.maintenance", "bank_add": "oddling.jobs.maintenance",
     "bank_info": "oddling.jobs.maintenance", "bank_remove": "oddling.jobs.maintenance",

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from oddling.bank.store import load_bank
 from oddling.errors import OddlingWarning
-from oddling.jobs.common import RunOptions
+from oddling.embedding.options import RunOptions
 from oddling.jobs.evaluation import EvaluationResult, evaluate
 from oddling.jobs.fitting import fit
 from oddling.jobs.maintenance import audit, bank_add, bank_info, bank_remove, bank_undo

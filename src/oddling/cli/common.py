@@ -14,9 +14,7 @@ import click
 
 from oddling.backbones import PRECISIONS, RUNTIMES
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions
-
-from oddling.errors import OddlingError
+from oddling.embedding.options import RunOptions
 
 EXIT_ATTENTION = 1   # the job ran, and something a flag asked about needs attention
 EXIT_BAD_INPUT = 2   # click's convention for usage errors; we use it for bad input too

@@ -10,7 +10,7 @@ from oddling.backbones import RUNTIMES
 from oddling.cli.common import BANK_PATH, _print_json, bank_option, target_fpr_override, user_errors
 from oddling.data.intake import MAX_PIXELS_DEFAULT
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions
+from oddling.embedding.options import RunOptions
 
 
 def _embedding_options(func):

@@ -141,6 +141,29 @@ class _DamagedFile(Exception):
     """The database file is not a usable SQLite database."""
 
 
+def open_cache(representation, options) -> "EmbeddingCache | None":
+    """The embedding cache a run with `options` (RunOptions) uses for `representation`, or None:
+    caching off, a representation that is not cached (patch grids), or a cache folder that cannot
+    be used at all (one OddlingWarning says so; the run goes on without it). Every row read back
+    must have the representation's dimension, and unit length where its features are normalised."""
+    from oddling.paths import cache_dir
+
+    if not (options.use_cache and representation.cacheable):
+        return None
+    folder = cache_dir(options.cache_dir)
+    try:
+        return EmbeddingCache.open(folder, representation.cache_fingerprint(), representation.runtime,
+                                   dim=representation.embedding_dim,
+                                   # network features are unit length; a pixel thumbnail of a flat image is 0
+                                   unit_norm=representation.spec.kind in ("embedding", "stages"))
+        # (a folder it cannot write is still read; the cache says so once itself)
+    except OSError as exc:
+        warnings.warn(f"the embedding cache in {folder} is not usable ({exc.strerror or exc}): running "
+                      "without it (nothing is reused or saved); pass --cache-dir with a writable folder, "
+                      "or --no-cache to say so", OddlingWarning, stacklevel=3)
+        return None
+
+
 class EmbeddingCache:
     """Features by file content hash, for one cache key.
 

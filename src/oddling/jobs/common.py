@@ -2,36 +2,12 @@
 from __future__ import annotations
 
 import math
-import os
 import warnings
-from dataclasses import dataclass
 from pathlib import Path
 
 from oddling.detectors.conformal import min_calibration_size, smallest_supported_rate
+from oddling.embedding.options import RunOptions
 from oddling.errors import OddlingError, OddlingWarning
-
-
-@dataclass
-class RunOptions:
-    """How to run the representation; shared by every job that reads images."""
-
-    cache_dir: str | os.PathLike | None = None
-    runtime: str = "auto"      # "auto" (OpenVINO, else ONNX Runtime, else PyTorch), "openvino", "onnx" or "torch"
-    batch_size: int = 32
-    workers: int | None = None
-    progress: bool = True
-    use_cache: bool = True     # reuse and save features in <cache>/embeddings
-    precision: str = "fp32"    # "bf16": OpenVINO only, checked against fp32 on the first batch
-    dask: str | None = None    # a Dask scheduler's address: embed on its workers (embedding/cluster.py)
-
-    def __post_init__(self):
-        # The precision travels inside the runtime text ("openvino:bf16"), so every job that
-        # passes `runtime` to load_representation passes the precision with it.
-        runtime, _, folded = str(self.runtime).partition(":")
-        if folded and self.precision not in ("fp32", folded):
-            raise OddlingError(f"runtime {self.runtime!r} contradicts precision {self.precision!r}")
-        self.precision = folded or self.precision
-        self.runtime = runtime if self.precision == "fp32" else f"{runtime}:{self.precision}"
 
 
 def check_rate(target_fpr: float) -> float:
@@ -84,24 +60,10 @@ def _suggest_rate(n: int, guarantee=None) -> str:
 
 def embed_paths(base: Path, paths: list[Path], representation, options: RunOptions, desc: str):
     """Files -> features with the representation, through the embedding cache where it applies."""
-    from oddling.embedding.cache import EmbeddingCache
+    from oddling.embedding.cache import open_cache
     from oddling.embedding.runner import embed_files
-    from oddling.paths import cache_dir
 
-    cache = None
-    if options.use_cache and representation.cacheable:
-        folder = cache_dir(options.cache_dir)
-        try:
-            cache = EmbeddingCache.open(folder, representation.cache_fingerprint(), representation.runtime,
-                                        dim=representation.embedding_dim,
-                                        # network features are unit length; a pixel thumbnail of a flat image is 0
-                                        unit_norm=representation.spec.kind in ("embedding", "stages"))
-            # (a folder it cannot write is still read; the cache says so once itself)
-        except OSError as exc:
-            cache = None
-            warnings.warn(f"the embedding cache in {folder} is not usable ({exc.strerror or exc}): running "
-                          "without it (nothing is reused or saved); pass --cache-dir with a writable folder, "
-                          "or --no-cache to say so", OddlingWarning, stacklevel=3)
+    cache = open_cache(representation, options)
     if options.dask:
         from oddling.embedding.cluster import embed_on_cluster   # only here: plain runs never import distributed
 

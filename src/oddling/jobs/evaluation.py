@@ -10,7 +10,8 @@ import numpy as np
 
 from oddling.bank.store import Bank
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, load_bank_representation, plural
+from oddling.embedding.options import RunOptions
+from oddling.jobs.common import check_rate, embed_folder, folder, load_bank_representation, plural
 from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
 from oddling.files import refuse_existing, write_text
 from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows

@@ -17,7 +17,8 @@ from oddling.detectors.conformal import DEFAULT_RATES, MARGINAL, ConformalThresh
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.files import refuse_existing
-from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
+from oddling.embedding.options import RunOptions
+from oddling.jobs.common import (check_rate, embed_folder, folder, format_summary, image_format,
                                  no_images_message, warn_if_few_calibration)
 from oddling.numbers import json_number
 

@@ -13,7 +13,8 @@ from oddling.data.intake import walk
 from oddling.detectors.conformal import smallest_supported_rate
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import (RunOptions, embed_paths, load_bank_representation, no_images_message, plural,
+from oddling.embedding.options import RunOptions
+from oddling.jobs.common import (embed_paths, load_bank_representation, no_images_message, plural,
                                  supported_rate_text)
 from oddling.jobs.fitting import calibration_record, fences_from_table, reference_entry, references_formats
 from oddling.jobs.scoring import as_bank

@@ -10,7 +10,8 @@ import numpy as np
 
 from oddling.bank.store import HISTORY_FILE, Bank, load_bank
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, embed_folder, folder, load_bank_representation
+from oddling.embedding.options import RunOptions
+from oddling.jobs.common import embed_folder, folder, load_bank_representation
 from oddling.jobs.maintenance import require_features
 from oddling.jobs.scoring import as_bank, score_features
 from oddling.numbers import json_number

@@ -11,7 +11,8 @@ from oddling.bank.store import Bank, load_bank
 from oddling.data.health import health_findings, health_text
 from oddling.detectors.base import Scores
 from oddling.errors import OddlingError
-from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
+from oddling.embedding.options import RunOptions
+from oddling.jobs.common import (check_rate, embed_folder, folder, format_summary, image_format,
                                  load_bank_representation, warn_if_few_calibration, warn_if_other_encoding)
 from oddling.files import write_text
 from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows

@@ -28,7 +28,7 @@ import numpy as np
 
 from oddling.data.intake import IMAGE_SUFFIXES, MAX_PIXELS_DEFAULT, ORIGINAL_SIZE, IntakeError, check_type, load_rgb
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions
+from oddling.embedding.options import RunOptions
 
 API_PREFIX = "/v1"
 MAX_NAME_CHARS = 512
@@ -270,12 +270,12 @@ class ScoringEngine:
 
     def _load(self) -> None:
         from oddling.jobs.common import load_bank_representation
-        from oddling.logbook.records import _open_cache
+        from oddling.embedding.cache import open_cache
         from oddling.logbook.store import ScoreLog
 
         options = self.config.options
         self.representation = load_bank_representation(self.bank, options)
-        self.cache = _open_cache(self.representation, options)
+        self.cache = open_cache(self.representation, options)
         if self.config.log_path is not None:
             self.log = ScoreLog(self.config.log_path, bank_path=self.bank.path)
 

@@ -40,7 +40,8 @@ from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.evaluation.metrics import CI_METHOD, content_counts
 from oddling.files import refuse_existing, write_text
-from oddling.jobs.common import RunOptions, check_rate, embed_paths, folder
+from oddling.embedding.options import RunOptions
+from oddling.jobs.common import check_rate, embed_paths, folder
 from oddling.jobs.evaluation import attach_labels, copies_notes
 from oddling.reporting.results import ScoreRow, json_number
 

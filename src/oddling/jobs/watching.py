@@ -23,7 +23,8 @@ import numpy as np
 
 from oddling.data.intake import IntakeError, check_type, display_path, sha256_file, walk
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, check_rate, folder
+from oddling.embedding.options import RunOptions
+from oddling.jobs.common import check_rate, folder
 
 DUPLICATE_STATUS = "skipped: same content as a file scored before"
 
@@ -50,7 +51,8 @@ class Watcher:
                  echo=_echo):
         from oddling.jobs.common import load_bank_representation
         from oddling.jobs.scoring import as_bank, require_flagging
-        from oddling.logbook.records import _open_cache, new_request_id
+        from oddling.embedding.cache import open_cache
+        from oddling.logbook.records import new_request_id
         from oddling.logbook.store import bank_fingerprint, default_log_path, ScoreLog
 
         self.incoming = folder(incoming_dir, "incoming folder")
@@ -84,7 +86,7 @@ class Watcher:
         self.fingerprint = bank_fingerprint(self.bank)
         self.run_id = new_request_id()
         self.representation = load_bank_representation(self.bank, self.options)
-        self.cache = _open_cache(self.representation, self.options)
+        self.cache = open_cache(self.representation, self.options)
         # What the log says this bank's watchers have already done.
         self._seen_hashes: set[str] = set()
         self._seen_pairs: set[tuple[str, str]] = set()

@@ -52,24 +52,15 @@ def log_score_result(result, log: ScoreLog, request: str | None = None) -> int:
 
 # ---- features of logged images -----------------------------------------------------------------
 
-def _open_cache(representation, options):
-    from oddling.embedding.cache import EmbeddingCache
-    from oddling.paths import cache_dir
-
-    if not (options.use_cache and representation.cacheable):
-        return None
-    return EmbeddingCache.open(cache_dir(options.cache_dir), representation.cache_fingerprint(),
-                               representation.runtime)
-
-
 def logged_features(rows: list[LogRow], representation, options, cache=None) -> tuple[np.ndarray, list[str]]:
     """(features, hashes) of the distinct content hashes among `rows`, in first-seen order, from the
     embedding cache or, failing that, the file at the row's path when it still holds the same bytes."""
     from oddling.data.intake import sha256_file
+    from oddling.embedding.cache import open_cache
     from oddling.embedding.runner import embed_files
 
     if cache is None:
-        cache = _open_cache(representation, options)
+        cache = open_cache(representation, options)
     hashes = list(dict.fromkeys(r.sha256 for r in rows if r.sha256))
     found: dict[str, np.ndarray] = {}
     if cache is not None:
@@ -110,7 +101,8 @@ def drift_over_log(log: ScoreLog, bank, *, last: int | None = None, since: str |
     binomial test of the share of logged scores above the bank's cutoff; same rule as `drift`.
     """
     from oddling.evaluation.shift import flagged_share_test, mmd_permutation_test, shift_verdict
-    from oddling.jobs.common import RunOptions, load_bank_representation
+    from oddling.embedding.options import RunOptions
+    from oddling.jobs.common import load_bank_representation
     from oddling.jobs.maintenance import require_features
     from oddling.jobs.monitoring import record_history, shift_figures
 
