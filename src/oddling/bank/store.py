@@ -102,7 +102,7 @@ class Bank:
     health_stats: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
     health_fences: dict = field(default_factory=dict)
     skipped: list[dict] = field(default_factory=list)
-    formats: dict = field(default_factory=dict)   # optional: the references' file formats (jobs.common.format_summary)
+    formats: dict = field(default_factory=dict)   # optional: the references' file formats (data.encoding.format_summary)
     vector_check: dict = field(default_factory=dict)
     path: Path | None = None
     format_version: int = FORMAT_VERSION

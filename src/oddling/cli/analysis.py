@@ -15,7 +15,7 @@ from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, ban
 from oddling.errors import OddlingError
 from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
 from oddling.files import check_output, refuse_existing
-from oddling.jobs.common import plural
+from oddling.numbers import plural
 
 
 def parse_params(pairs: tuple[str, ...]) -> dict:
@@ -263,7 +263,7 @@ def report(folder, bank_path, log_path, since, until, last, out_html, labelled, 
     check_output(out_html, force=force, option="--out", example="report.html")
     if log_path is not None:
         from oddling.cli.service import bank_for_log, open_existing_log
-        from oddling.logbook.records import report_rows
+        from oddling.jobs.log_report import report_rows
         from oddling.logbook.store import parse_time
 
         if folder is not None or labelled or labels_csv:

@@ -12,7 +12,7 @@ from oddling.cli.common import (BANK_PATH, EXIT_ATTENTION, _num, _options, _prin
 from oddling.errors import OddlingError
 from oddling.data.intake import display_path
 from oddling.files import check_output
-from oddling.jobs.common import plural
+from oddling.numbers import plural
 from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
 
 @click.command()
@@ -41,7 +41,7 @@ def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, 
         raise click.UsageError("--plot draws the history of checks: give it with --history BANK")
     if log_path is not None:
         from oddling.cli.service import bank_for_log, open_existing_log
-        from oddling.logbook.records import drift_over_log
+        from oddling.jobs.monitoring import drift_over_log
         from oddling.logbook.store import parse_time
 
         if incoming_dir is not None or history_bank is not None:

@@ -11,7 +11,9 @@ import numpy as np
 from oddling.bank.store import Bank
 from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.jobs.common import check_rate, embed_folder, folder, load_bank_representation, plural
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
+from oddling.numbers import plural
+from oddling.jobs.rates import check_target_rate
 from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
 from oddling.files import refuse_existing, write_text
 from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows
@@ -147,7 +149,7 @@ def evaluate(
         raise OddlingError(f"beta must be > 0, got: {beta}")
     bank = as_bank(bank)
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     rep = load_bank_representation(bank, options)
     embedded = embed_folder(test_dir, rep, options, "evaluating", (bank.path,) if bank.path else ())
     rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)

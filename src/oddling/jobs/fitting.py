@@ -18,8 +18,9 @@ from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.files import refuse_existing
 from oddling.embedding.options import RunOptions
-from oddling.jobs.common import (check_rate, embed_folder, folder, format_summary, image_format,
-                                 no_images_message, warn_if_few_calibration)
+from oddling.data.encoding import format_summary, image_format
+from oddling.jobs.reading import embed_folder, folder, no_images_message
+from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
 from oddling.numbers import json_number
 
 DEFAULT_REPRESENTATION = "efficientnet-lite0"
@@ -223,7 +224,7 @@ def fit(
     check_pairing(spec, model)
     vector_dtype = check_vector_dtype(vector_dtype, spec, model)
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     promise = make_guarantee(guarantee, confidence)
     refuse_existing(bank_path, force=force)
     rep = load_representation(spec, options.cache_dir, options.runtime)

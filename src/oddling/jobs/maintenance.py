@@ -10,12 +10,12 @@ import numpy as np
 
 from oddling.bank.store import Bank, bank_lock, load_bank, previous_path, restore_previous, save_bank
 from oddling.data.intake import walk
-from oddling.detectors.conformal import smallest_supported_rate
+from oddling.detectors.conformal import smallest_supported_rate, supported_rate_text
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.jobs.common import (embed_paths, load_bank_representation, no_images_message, plural,
-                                 supported_rate_text)
+from oddling.jobs.reading import embed_paths, load_bank_representation, no_images_message
+from oddling.numbers import plural
 from oddling.jobs.fitting import calibration_record, fences_from_table, reference_entry, references_formats
 from oddling.jobs.scoring import as_bank
 
@@ -77,7 +77,7 @@ def _read_decisions(csv_path: Path, root: Path | None) -> list[Path]:
         if not reader.fieldnames or not {"path", "decision"} <= set(reader.fieldnames):
             raise OddlingError(f"{csv_path} must have columns path,decision (got {reader.fieldnames})")
         rows = list(reader)
-    from oddling.reporting.results import path_from_cell
+    from oddling.data.csv_cells import path_from_cell
 
     files, outside = [], []
     for row in rows:

@@ -12,8 +12,9 @@ from oddling.data.health import health_findings, health_text
 from oddling.detectors.base import Scores
 from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.jobs.common import (check_rate, embed_folder, folder, format_summary, image_format,
-                                 load_bank_representation, warn_if_few_calibration, warn_if_other_encoding)
+from oddling.data.encoding import format_summary, image_format, warn_if_other_encoding
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
+from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
 from oddling.files import write_text
 from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows
 
@@ -184,7 +185,7 @@ def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None,
 
 def warn_about_encoding(bank: Bank, root: Path, rows: list[ScoreRow]) -> None:
     """OddlingWarning when the scored files are encoded unlike the bank's references (format, JPEG
-    quality): jobs.common.warn_if_other_encoding. Reads each scored file's header, no pixels."""
+    quality): data.encoding.warn_if_other_encoding. Reads each scored file's header, no pixels."""
     if not bank.formats:
         return
     batch = format_summary(image_format(root / r.path) for r in rows if r.score is not None)
@@ -215,7 +216,7 @@ def score(
     incoming_dir = folder(incoming_dir, "incoming folder")
     bank = as_bank(bank)
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     if require_cutoff:
         require_flagging(bank, target_fpr, "--fail-on-flagged")
     warn_if_few_calibration(bank.threshold(target_fpr))

@@ -269,7 +269,7 @@ class ScoringEngine:
         self._loop()
 
     def _load(self) -> None:
-        from oddling.jobs.common import load_bank_representation
+        from oddling.jobs.reading import load_bank_representation
         from oddling.embedding.cache import open_cache
         from oddling.logbook.store import ScoreLog
 
@@ -657,7 +657,7 @@ def serve_app(bank, *, log=None, token: str | None = None, config: ServiceConfig
     @app.get(f"{API_PREFIX}/drift", summary="Shift verdict over the last N logged images")
     async def drift(request: Request, last: int = Query(100, ge=2, le=5000),
                     permutations: int = Query(500, ge=19, le=5000)):
-        from oddling.logbook.records import drift_over_log
+        from oddling.jobs.monitoring import drift_over_log
 
         authorise(request)
         require_ready()

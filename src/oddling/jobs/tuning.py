@@ -41,7 +41,8 @@ from oddling.errors import OddlingError
 from oddling.evaluation.metrics import CI_METHOD, content_counts
 from oddling.files import refuse_existing, write_text
 from oddling.embedding.options import RunOptions
-from oddling.jobs.common import check_rate, embed_paths, folder
+from oddling.jobs.reading import embed_paths, folder
+from oddling.jobs.rates import check_target_rate
 from oddling.jobs.evaluation import attach_labels, copies_notes
 from oddling.reporting.results import ScoreRow, json_number
 
@@ -275,7 +276,7 @@ def tune(
     options = options or RunOptions()
     test_dir, reference_dir = folder(test_dir, "test folder"), folder(reference_dir, "reference folder")
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     promise = make_guarantee(guarantee, confidence)
     if budget_minutes is not None and budget_minutes <= 0:
         raise OddlingError(f"budget must be > 0 minutes, got: {budget_minutes}")

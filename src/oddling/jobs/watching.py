@@ -24,7 +24,8 @@ import numpy as np
 from oddling.data.intake import IntakeError, check_type, display_path, sha256_file, walk
 from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.jobs.common import check_rate, folder
+from oddling.jobs.reading import folder
+from oddling.jobs.rates import check_target_rate
 
 DUPLICATE_STATUS = "skipped: same content as a file scored before"
 
@@ -49,7 +50,7 @@ class Watcher:
                  settle_seconds: float = 1.0, drift_every: int = 100, drift_window: int = 200,
                  drift_permutations: int = 500, target_fpr: float | None = None, options: RunOptions | None = None,
                  echo=_echo):
-        from oddling.jobs.common import load_bank_representation
+        from oddling.jobs.reading import load_bank_representation
         from oddling.jobs.scoring import as_bank, require_flagging
         from oddling.embedding.cache import open_cache
         from oddling.logbook.records import new_request_id
@@ -65,7 +66,7 @@ class Watcher:
         self.poll_seconds, self.settle_seconds = float(poll_seconds), float(settle_seconds)
         self.drift_every, self.drift_window, self.drift_permutations = int(drift_every), int(drift_window), int(
             drift_permutations)
-        self.target_fpr = check_rate(target_fpr) if target_fpr is not None else None
+        self.target_fpr = check_target_rate(target_fpr) if target_fpr is not None else None
         require_flagging(self.bank, self.target_fpr, "watch")
         self.options = options or RunOptions(progress=False)
         self.echo = echo

@@ -23,9 +23,9 @@ from PIL import Image
 
 from oddling import __version__
 from oddling.bank.store import Bank
+from oddling.detectors.conformal import supported_rate_text
 from oddling.errors import OddlingError
 from oddling.data.intake import IntakeError, display_path, load_rgb
-from oddling.jobs.common import supported_rate_text
 from oddling.files import refuse_existing, write_text
 from oddling.reporting.results import ScoreRow, sort_rows
 
@@ -551,8 +551,8 @@ _CSS = _asset("page.css")
 
 
 # The decisions export's cell functions (also run on their own by tests/test_hostile.py).
-# csvText is results.csv_text for a path already in display form (data-path holds
-# display_path); results.path_from_cell reads an exported path back.
+# csvText is data.csv_cells.csv_text for a path already in display form (data-path holds
+# display_path); csv_cells.path_from_cell reads an exported path back.
 CSV_CELLS_JS = _asset("csv_cells.js")
 
 

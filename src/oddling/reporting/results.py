@@ -2,10 +2,9 @@
 from __future__ import annotations
 
 import math
-import re
 from dataclasses import dataclass, field
 
-from oddling.data.intake import display_path, path_from_display
+from oddling.data.csv_cells import csv_field, csv_text
 from oddling.embedding.runner import OK
 from oddling.numbers import json_number  # noqa: F401  (re-exported: its home is oddling.numbers)
 
@@ -52,41 +51,8 @@ def _num(value: float | None, digits: int = 6) -> str:
     return f"{value:.{digits}f}"
 
 
-# OWASP "CSV Injection": a spreadsheet runs a cell starting with = + - @ TAB or CR as a formula.
-# Such a text cell gets one leading single quote. Cells that already start with single quotes
-# followed by one of those get one more, so the rule stays reversible (see path_from_cell).
-FORMULA_START = re.compile("^'*[=+\\-@\t\r]")
-_QUOTED_FORMULA = re.compile("^'+[=+\\-@\t\r]")
-
-
-def csv_text(value: str) -> str:
-    """A text cell of a CSV (path, nearest, health, status, kind; never a number): the path as
-    intake.display_path writes it, then neutralised against formula injection."""
-    text = display_path(value)
-    return "'" + text if FORMULA_START.match(text) else text
-
-
-def path_from_cell(cell: str) -> str:
-    """The inverse of csv_text: the str that opens the real file, from a path cell of the scores
-    CSV or the page's decisions export (one leading ' dropped, then intake.path_from_display)."""
-    if _QUOTED_FORMULA.match(cell):
-        cell = cell[1:]
-    return path_from_display(cell)
-
-
-def _field(cell: str) -> str:
-    """RFC 4180 quoting: a cell holding a comma, a double quote, CR or LF is quoted, quotes doubled.
-
-    csv.writer's QUOTE_MINIMAL quotes only the characters of its line terminator ("\\n" here), so
-    a lone "\\r" in a file name went out unquoted and split the row for every reader.
-    """
-    if any(c in cell for c in ',"\r\n'):
-        return '"' + cell.replace('"', '""') + '"'
-    return cell
-
-
 def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
-    """The scores CSV: one line per row ending in "\\n", cells quoted as _field says."""
+    """The scores CSV: one line per row ending in "\\n", cells quoted as csv_field says."""
     columns = SCORE_COLUMNS + (["label", "kind"] if with_labels else [])
     lines = [columns]
     for r in rows:
@@ -103,7 +69,7 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
         if with_labels:
             line += ["" if r.label is None else ("anomalous" if r.label else "normal"), csv_text(r.kind or "")]
         lines.append(line)
-    return "".join(",".join(_field(cell) for cell in line) + "\n" for line in lines)
+    return "".join(",".join(csv_field(cell) for cell in line) + "\n" for line in lines)
 
 
 def count_ok(rows: list[ScoreRow]) -> int:
