@@ -32,7 +32,7 @@ def test_importing_oddling_does_not_load_torch():
 
 def test_the_patch_detector_module_imports_without_torch():
     out = fresh("from oddling.detectors import make_detector\nmake_detector('patch-knn')\n"
-                "import oddling.detectors.patch as p\nout['grid'] = p.grid_size(224)")
+                "import oddling.backbones.patch_grid as p\nout['grid'] = p.grid_size(224)")
     assert out["grid"] == 28 and not out["torch_loaded"]
 
 

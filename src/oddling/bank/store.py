@@ -697,7 +697,7 @@ def _read_v1(f: _Fields, n: int, memory_map: bool = True):
     if mode != "local":
         f.fail("mode", f"must be global or local, got {mode!r}")
     local = f.get("local", dict)
-    from oddling.detectors.patch import local_preprocessing
+    from oddling.backbones.patch_grid import local_preprocessing
     from oddling.data.preprocess import Preprocessing
 
     prep = local_preprocessing(Preprocessing.from_dict(backbone["preprocessing"]))

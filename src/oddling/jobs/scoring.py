@@ -89,7 +89,7 @@ class ScoreResult:
         as is for a .png), so a.jpg and a.png never overwrite each other. Colours run from 0 to the
         batch's highest score, so maps of one batch compare."""
         from oddling.data.intake import load_rgb
-        from oddling.detectors.patch import overlay
+        from oddling.reporting.heatmaps import overlay
 
         if not any(r.anomaly_grid is not None for r in self.scored) and self.scored:
             raise OddlingError(f"anomaly maps need a detector that scores locations (patch-knn); this bank's "
@@ -106,7 +106,7 @@ class ScoreResult:
 
 
 def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | None = None) -> np.ndarray:
-    from oddling.detectors.patch import upsample_map
+    from oddling.reporting.heatmaps import upsample_map
 
     if row.anomaly_grid is None:
         raise OddlingError(f"{row.path} has no anomaly map (needs a patch-detector bank and a readable image)")

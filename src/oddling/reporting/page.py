@@ -229,7 +229,7 @@ def thumbnail_uri(path: Path, px: int) -> str | None:
 
 def heatmap_uri(path: Path, row: ScoreRow, crop: int, px: int, vmax: float) -> str | None:
     """Local mode: a JPEG data URI of the image with its anomaly map over it, like the thumbnail."""
-    from oddling.detectors.patch import overlay, upsample_map
+    from oddling.reporting.heatmaps import overlay, upsample_map
 
     try:
         image = load_rgb(path, min_side=px)
