@@ -177,7 +177,8 @@ def fit_fold_bank(features: np.ndarray, folds: np.ndarray, n_folds: int, fractio
                     len(features) * locations)
 
 
-from oddling.detectors.base import Detector, Scores, check_features, check_fitted, distinct_groups  # noqa: E402
+from oddling.detectors.base import (Detector, Scores, check_features, check_fitted, distinct_groups,  # noqa: E402
+                                    group_folds)
 from oddling.errors import OddlingError  # noqa: E402
 
 
@@ -224,9 +225,6 @@ class PatchKNNDetector(Detector):
         self.seed = seed
         self.folds = folds
 
-    def get_params(self) -> dict:
-        return {"coreset": self.coreset, "seed": self.seed, "folds": self.folds}
-
     def _check_params(self) -> None:
         if isinstance(self.coreset, bool) or not isinstance(self.coreset, (int, float)) or not 0.0 < self.coreset <= 1.0:
             raise OddlingError(f"coreset must be in (0, 1], got: {self.coreset!r}")
@@ -236,7 +234,6 @@ class PatchKNNDetector(Detector):
             raise OddlingError(f"folds must be an integer >= 2, got: {self.folds!r}")
 
     def fit(self, features: np.ndarray, groups: np.ndarray | None = None) -> "PatchKNNDetector":
-        from oddling.detectors.base import check_features, distinct_groups, group_folds
         self._check_params()
         features = check_features(features, "patches")
         groups = distinct_groups(groups, len(features))
