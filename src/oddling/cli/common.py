@@ -32,11 +32,14 @@ def user_errors(func):
     """Turn user mistakes into a one-line message and exit code 2 instead of a traceback.
 
     SIGTERM is handled like Ctrl-C: the cache keeps the finished work, temporary files are
-    removed, and the exit code is 130.
+    removed, and the exit code is 130. Warnings print as one "warning: ..." line. Both hooks are
+    put back as they were when the command ends, so a caller in the same process (the Python API
+    after a CLI call, a test) gets its own again.
     """
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
+        shown_before = warnings.showwarning
         warnings.showwarning = _show_warning
         previous = None
         if threading.current_thread() is threading.main_thread() and hasattr(signal, "SIGTERM"):
@@ -50,6 +53,7 @@ def user_errors(func):
             click.echo("Interrupted.", err=True)
             sys.exit(130)
         finally:
+            warnings.showwarning = shown_before
             if previous is not None:
                 signal.signal(signal.SIGTERM, previous)
 
