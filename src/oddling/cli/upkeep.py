@@ -7,9 +7,8 @@ from pathlib import Path
 import click
 
 from oddling import api
-from oddling.cli.common import (BANK_PATH, EXIT_ATTENTION, _num, _options, _print_json, bank_option, dask_option,
-                                run_options, target_fpr_override, user_errors)
-from oddling.errors import OddlingError
+from oddling.cli.options import BANK_PATH, _options, bank_option, dask_option, run_options
+from oddling.cli.output import EXIT_ATTENTION, _num, _print_json, user_errors
 from oddling.data.intake import display_path
 from oddling.files import check_output
 from oddling.numbers import plural
