@@ -142,10 +142,11 @@ class _DamagedFile(Exception):
 
 
 def open_cache(representation, options) -> "EmbeddingCache | None":
-    """The embedding cache a run with `options` (RunOptions) uses for `representation`, or None:
-    caching off, a representation that is not cached (patch grids), or a cache folder that cannot
-    be used at all (one OddlingWarning says so; the run goes on without it). Every row read back
-    must have the representation's dimension, and unit length where its features are normalised."""
+    """The embedding cache a run with `options` (RunOptions) uses for `representation`, or None when
+    caching is off or the representation is not cached (patch grids). Every row read back must have
+    the representation's dimension, and unit length where its features are normalised. A cache
+    folder that cannot be used is said once, in one OddlingWarning (by the cache itself, or here when
+    it cannot even be opened: then None), and the run goes on without it."""
     from oddling.paths import cache_dir
 
     if not (options.use_cache and representation.cacheable):
