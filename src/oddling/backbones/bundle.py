@@ -23,10 +23,10 @@ import tarfile
 import time
 from pathlib import Path, PurePosixPath
 
-from oddling.errors import OddlingError
-from oddling.files import refuse_existing
 from oddling.backbones.manifest import get_spec
 from oddling.backbones.weights import (Installed, prove_file, put_in_place, resolve_weights, staging_path)
+from oddling.errors import OddlingError
+from oddling.files import refuse_existing
 
 BUNDLE_MANIFEST = "oddling-weights.json"
 FORMAT = "oddling-weights-bundle"

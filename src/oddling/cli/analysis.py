@@ -9,13 +9,13 @@ import click
 
 from oddling import api
 from oddling.backbones import DEFAULT_BACKBONE
-from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
 from oddling.cli.options import (_options, bank_option, calibration_options, dask_option, run_options,
                                  target_fpr_override)
 from oddling.cli.output import EXIT_ATTENTION, _num, _print_json, user_errors
+from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
 from oddling.errors import OddlingError
-from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
 from oddling.files import check_output, refuse_existing
+from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
 from oddling.numbers import plural
 
 

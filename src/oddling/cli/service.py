@@ -10,8 +10,8 @@ from oddling.backbones import RUNTIMES
 from oddling.cli.options import BANK_PATH, bank_option, target_fpr_override
 from oddling.cli.output import _print_json, user_errors
 from oddling.data.intake import MAX_PIXELS_DEFAULT
-from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
+from oddling.errors import OddlingError
 
 
 def _embedding_options(func):

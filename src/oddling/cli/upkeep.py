@@ -11,8 +11,8 @@ from oddling.cli.options import BANK_PATH, _options, bank_option, dask_option, r
 from oddling.cli.output import EXIT_ATTENTION, _num, _print_json, user_errors
 from oddling.data.intake import display_path
 from oddling.files import check_output
-from oddling.numbers import plural
 from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
+from oddling.numbers import plural
 
 @click.command()
 @click.argument("incoming_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))

@@ -9,13 +9,13 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import Bank
-from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.jobs.reading import embed_folder, folder, load_bank_representation
-from oddling.numbers import plural
-from oddling.jobs.rates import check_target_rate
-from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
+from oddling.errors import OddlingError
 from oddling.files import refuse_existing, write_text
+from oddling.jobs.rates import check_target_rate
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
+from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
+from oddling.numbers import plural
 from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows
 
 

@@ -11,16 +11,16 @@ from oddling import __version__
 from oddling.backbones.representation import RepresentationSpec, load_representation
 from oddling.bank.store import Bank, save_bank
 from oddling.bank.vectors import check_dtype, check_float16
+from oddling.data.encoding import format_summary, image_format
 from oddling.data.health import STATS, fit_fences
 from oddling.detectors import DEFAULT_DETECTOR, make_detector
 from oddling.detectors.conformal import DEFAULT_RATES, MARGINAL, ConformalThreshold, Guarantee, default_rate
+from oddling.embedding.options import RunOptions
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.files import refuse_existing
-from oddling.embedding.options import RunOptions
-from oddling.data.encoding import format_summary, image_format
-from oddling.jobs.reading import embed_folder, folder, no_images_message
 from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
+from oddling.jobs.reading import embed_folder, folder, no_images_message
 from oddling.numbers import json_number
 
 DEFAULT_REPRESENTATION = "efficientnet-lite0"

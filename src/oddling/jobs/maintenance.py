@@ -11,13 +11,13 @@ import numpy as np
 from oddling.bank.store import Bank, bank_lock, load_bank, previous_path, restore_previous, save_bank
 from oddling.data.intake import walk
 from oddling.detectors.conformal import smallest_supported_rate, supported_rate_text
+from oddling.embedding.options import RunOptions
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.embedding.options import RunOptions
-from oddling.jobs.reading import embed_paths, load_bank_representation, no_images_message
-from oddling.numbers import plural
 from oddling.jobs.fitting import calibration_record, fences_from_table, reference_entry, references_formats
+from oddling.jobs.reading import embed_paths, load_bank_representation, no_images_message
 from oddling.jobs.scoring import as_bank
+from oddling.numbers import plural
 
 
 def require_features(bank: Bank, what: str) -> None:

@@ -10,10 +10,10 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import HISTORY_FILE, Bank, load_bank
-from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.jobs.reading import embed_folder, folder, load_bank_representation
+from oddling.errors import OddlingError
 from oddling.jobs.maintenance import require_features
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
 from oddling.jobs.scoring import as_bank, score_features
 from oddling.logbook.store import ScoreLog
 from oddling.numbers import json_number

@@ -8,14 +8,14 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import Bank, load_bank
+from oddling.data.encoding import format_summary, image_format, warn_if_other_encoding
 from oddling.data.health import health_findings, health_text
 from oddling.detectors.base import Scores
-from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.data.encoding import format_summary, image_format, warn_if_other_encoding
-from oddling.jobs.reading import embed_folder, folder, load_bank_representation
-from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
+from oddling.errors import OddlingError
 from oddling.files import write_text
+from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
 from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows
 
 

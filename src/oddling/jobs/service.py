@@ -27,8 +27,8 @@ from pathlib import Path
 import numpy as np
 
 from oddling.data.intake import IMAGE_SUFFIXES, MAX_PIXELS_DEFAULT, ORIGINAL_SIZE, IntakeError, check_type, load_rgb
-from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
+from oddling.errors import OddlingError
 
 API_PREFIX = "/v1"
 MAX_NAME_CHARS = 512

@@ -36,14 +36,14 @@ from oddling.backbones.representation import RepresentationSpec, load_representa
 from oddling.bank.store import save_bank
 from oddling.data.intake import IntakeError, check_type, discover, sha256_file
 from oddling.detectors import make_detector
+from oddling.embedding.options import RunOptions
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.evaluation.metrics import CI_METHOD, content_counts
 from oddling.files import refuse_existing, write_text
-from oddling.embedding.options import RunOptions
-from oddling.jobs.reading import embed_paths, folder
-from oddling.jobs.rates import check_target_rate
 from oddling.jobs.evaluation import attach_labels, copies_notes
+from oddling.jobs.rates import check_target_rate
+from oddling.jobs.reading import embed_paths, folder
 from oddling.reporting.results import ScoreRow, json_number
 
 MIN_PER_CLASS = 10     # below this an AUROC, let alone a choice between configurations, means little

@@ -22,10 +22,10 @@ from pathlib import Path
 import numpy as np
 
 from oddling.data.intake import IntakeError, check_type, display_path, sha256_file, walk
-from oddling.errors import OddlingError
 from oddling.embedding.options import RunOptions
-from oddling.jobs.reading import folder
+from oddling.errors import OddlingError
 from oddling.jobs.rates import check_target_rate
+from oddling.jobs.reading import folder
 
 DUPLICATE_STATUS = "skipped: same content as a file scored before"
 

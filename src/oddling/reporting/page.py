@@ -23,9 +23,9 @@ from PIL import Image
 
 from oddling import __version__
 from oddling.bank.store import Bank
+from oddling.data.intake import IntakeError, display_path, load_rgb
 from oddling.detectors.conformal import supported_rate_text
 from oddling.errors import OddlingError
-from oddling.data.intake import IntakeError, display_path, load_rgb
 from oddling.files import refuse_existing, write_text
 from oddling.reporting.results import ScoreRow, sort_rows
 
