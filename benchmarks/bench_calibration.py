@@ -148,7 +148,7 @@ class CaseFeatures:
 
 def embed_case(folder: Path, paths: list[Path], representations: dict, options) -> CaseFeatures:
     """Every crop through the pipeline's intake and embedding runner, once per representation."""
-    from oddling.jobs.common import embed_paths
+    from oddling.jobs.reading import embed_paths
 
     features, groups = {}, None
     for kind, representation in representations.items():
@@ -417,7 +417,7 @@ def main() -> None:
     variants = threshold_variants()
 
     from oddling.backbones.representation import load_representation
-    from oddling.jobs.common import RunOptions
+    from oddling.embedding.options import RunOptions
 
     started = time.perf_counter()
     results: list[BankResult] = []

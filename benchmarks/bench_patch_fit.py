@@ -60,7 +60,7 @@ def write_crops(folder: Path, n: int, seed: int = 0) -> list[Path]:
 def patch_features(folder: Path, paths: list[Path]):
     import oddling
     from oddling.backbones.representation import load_representation
-    from oddling.jobs.common import embed_paths
+    from oddling.jobs.reading import embed_paths
 
     options = oddling.RunOptions(progress=False, use_cache=False)
     rep = load_representation("efficientnet-lite0/patches:stage2+stage3")

@@ -414,7 +414,7 @@ def patch_score_parts(bank, incoming: Path, runtime: str) -> tuple[float, float]
     """The two halves of scoring a patch bank, ms/image: the features of the incoming images, and
     the detector's nearest-patch search over them."""
     import oddling
-    from oddling.jobs.common import embed_paths, load_bank_representation
+    from oddling.jobs.reading import embed_paths, load_bank_representation
 
     options = oddling.RunOptions(runtime=runtime, use_cache=False, progress=False)
     paths = sorted(incoming.glob("*.jpg"))

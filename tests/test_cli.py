@@ -99,3 +99,19 @@ def test_fit_refuses_existing_bank_without_force(digits_bank, digits_folders):
 def test_backbones_list_names_the_default():
     result = run("backbones", "list")
     assert result.exit_code == 0 and "efficientnet-lite0 (default)" in result.output
+
+
+@pytest.mark.parametrize("args, code", [(("backbones", "list"), 0), (("bank", "info", "no-such.bank"), 2)])
+def test_a_command_puts_back_the_warning_hook_it_set(monkeypatch, args, code):
+    # The CLI prints warnings as one "warning: ..." line while a command runs; a caller in the same
+    # process (the Python API after a CLI call) keeps its own hook afterwards.
+    import signal
+    import warnings
+
+    def mine(message, category, filename, lineno, file=None, line=None):
+        pass
+
+    monkeypatch.setattr(warnings, "showwarning", mine)
+    sigterm = signal.getsignal(signal.SIGTERM)
+    assert run(*args).exit_code == code
+    assert warnings.showwarning is mine and signal.getsignal(signal.SIGTERM) is sigterm

@@ -5,6 +5,7 @@ References: scikit-learn's LedoitWolf / EmpiricalCovariance / ShrunkCovariance `
 (`-score_samples`); the conformal guarantee of Vovk, Gammerman & Shafer, *Algorithmic Learning in
 a Random World* 2005 and Bates et al., Annals of Statistics 2023.
 """
+import inspect
 import io
 import json
 import math
@@ -13,7 +14,7 @@ import sys
 import numpy as np
 import pytest
 
-from oddling.detectors import detector_class, make_detector
+from oddling.detectors import DETECTORS as REGISTRY, detector_class, make_detector
 from oddling.detectors.base import N_FOLDS, distinct_groups, group_folds
 from oddling.detectors.conformal import ConformalThreshold
 from oddling.detectors.gaussian import GaussianDetector
@@ -388,3 +389,60 @@ def test_a_state_written_before_fold_models_loads_as_one_refitted_model(name):
     np.testing.assert_array_equal(loaded.anomaly_score(y, np.array([str(i) for i in range(20)])).scores,
                                   single._score_model(y))
     assert loaded.state()[0] == json.loads(json.dumps(old_state)) and set(loaded.state()[1]) == set(old_arrays)
+
+
+# --- every detector as a scikit-learn style estimator ---------------------------------------------
+
+# A valid value other than the default for one parameter of each detector.
+OTHER_PARAMS = {"knn": {"k": 3}, "patch-knn": {"coreset": 0.2}, "gaussian": {"shrinkage": 0.1},
+                "pca": {"variance": 0.8}, "iforest": {"n_estimators": 10}}
+
+
+def some_features(name, n=5):
+    """Features of the kind the detector takes: (n, d) vectors, or (n, locations, channels) patch grids."""
+    rng = np.random.default_rng(14)
+    return rng.standard_normal((n, 4, 3) if name == "patch-knn" else (n, 4)).astype(np.float32)
+
+
+@pytest.mark.parametrize("name", REGISTRY)
+def test_get_params_are_read_from_the_constructor_signature(name):
+    # As scikit-learn's BaseEstimator.get_params: the __init__ parameters, each read back by its name.
+    det = make_detector(name)
+    signature = inspect.signature(type(det).__init__).parameters
+    assert list(det.get_params()) == list(signature)[1:]
+    assert det.get_params() == {key: p.default for key, p in list(signature.items())[1:]}
+    assert "get_params" not in vars(type(det))          # no hand-written copy to fall out of step
+
+
+@pytest.mark.parametrize("name", REGISTRY)
+def test_set_params_changes_the_parameters_and_returns_the_detector(name):
+    det = make_detector(name)
+    defaults = det.get_params()
+    assert det.set_params(**OTHER_PARAMS[name]) is det
+    assert det.get_params() == defaults | OTHER_PARAMS[name] == det.clone().get_params()
+
+
+@pytest.mark.parametrize("name", REGISTRY)
+def test_set_params_refuses_a_name_the_constructor_does_not_take(name):
+    det = make_detector(name)
+    valid = ", ".join(det.get_params())
+    with pytest.raises(OddlingError, match=f"no parameter 'n_neighbours'; its parameters: {valid}$"):
+        det.set_params(n_neighbours=3)
+    assert det.get_params() == make_detector(name).get_params()
+
+
+def test_a_parameter_set_later_is_checked_at_fit_like_one_given_to_the_constructor():
+    x = np.random.default_rng(10).standard_normal((40, 4))
+    with pytest.raises(OddlingError, match="k must be an integer >= 1, got: 0"):
+        make_detector("knn").set_params(k=0).fit(x)
+
+
+@pytest.mark.parametrize("name", REGISTRY)
+@pytest.mark.parametrize("use", ["anomaly_score", "score_samples", "state"])
+def test_an_unfitted_detector_says_it_is_not_fitted(name, use):
+    det = make_detector(name)
+    call = {"anomaly_score": lambda: det.anomaly_score(some_features(name)),
+            "score_samples": lambda: det.score_samples(some_features(name)),
+            "state": det.state}[use]
+    with pytest.raises(OddlingError, match=f"this {name} detector is not fitted yet: call fit"):
+        call()

@@ -344,3 +344,44 @@ def test_cache_key_depends_on_runtime_and_weights():
     assert cache_key(fp, "onnx") != cache_key(fp, "torch")
     assert cache_key(fp, "onnx") != cache_key(dict(fp, weights_sha256="b" * 64), "onnx")
     assert np.array_equal([cache_key(fp, "onnx")], [cache_key(dict(fp), "onnx")])
+
+
+class StubRepresentation:
+    """What open_cache reads of a representation."""
+
+    def __init__(self, kind="embedding", dim=8, cacheable=True):
+        self.spec = type("Spec", (), {"kind": kind})()
+        self.embedding_dim, self.cacheable, self.runtime = dim, cacheable, "stub"
+
+    def cache_fingerprint(self):
+        return {"id": f"stub-{self.spec.kind}"}
+
+
+@pytest.mark.parametrize("kind, unit_norm", [("embedding", True), ("stages", True), ("pixels", False)])
+def test_open_cache_checks_the_dimension_and_the_unit_length_of_normalised_features(tmp_path, kind, unit_norm):
+    from oddling.embedding.cache import open_cache
+
+    cache = open_cache(StubRepresentation(kind, dim=8), opts(tmp_path))
+    assert (cache.dim, cache.unit_norm) == (8, unit_norm)
+    assert cache.folder.parent == tmp_path / "embeddings"
+
+
+def test_open_cache_gives_none_when_caching_is_off_or_the_features_are_not_cached(tmp_path):
+    from oddling.embedding.cache import open_cache
+
+    assert open_cache(StubRepresentation(), opts(tmp_path, use_cache=False)) is None
+    assert open_cache(StubRepresentation("patches", cacheable=False), opts(tmp_path)) is None
+    assert not (tmp_path / "embeddings").exists()
+
+
+def test_open_cache_on_a_folder_that_cannot_be_used_warns_once_and_the_run_goes_on(tmp_path):
+    from oddling.embedding.cache import open_cache
+
+    blocked = tmp_path / "file"
+    blocked.write_text("a file where the cache folder should be")
+    with warnings.catch_warnings(record=True) as record:
+        warnings.simplefilter("always")
+        cache = open_cache(StubRepresentation(), opts(blocked))
+        assert cache is None or cache.get("0" * 64) is None
+    [message] = _oddling_warnings(record)
+    assert str(blocked) in message and "without it" in message

@@ -142,7 +142,7 @@ def test_score_out_checks_share_the_helper(digits_bank, tmp_path):
 
 
 def test_check_output_rules(tmp_path):
-    from oddling.jobs.common import check_output
+    from oddling.files import check_output
 
     assert check_output(None, force=False) is None
     assert check_output(tmp_path / "a" / "b.png", force=False, suffix=".png") == tmp_path / "a" / "b.png"
@@ -454,7 +454,7 @@ def test_jpeg_quality_estimate_from_pillows_own_encoder(tmp_path, quality):
     import numpy as np
     from PIL import Image
 
-    from oddling.jobs.common import image_format
+    from oddling.data.encoding import image_format
 
     path = tmp_path / "x.jpg"
     Image.fromarray((np.random.default_rng(0).random((32, 32, 3)) * 255).astype("uint8")).save(path, quality=quality)
@@ -465,7 +465,7 @@ def test_jpeg_quality_estimate_from_pillows_own_encoder(tmp_path, quality):
 def test_warn_if_other_encoding_rules():
     import warnings
 
-    from oddling.jobs.common import warn_if_other_encoding
+    from oddling.data.encoding import warn_if_other_encoding
 
     with pytest.warns(oddling.OddlingWarning, match="references are JPEG of quality about 95; the scored JPEGs about 50"):
         warn_if_other_encoding({"JPEG": 40, "jpeg_quality": {"median": 95}}, {"JPEG": 5, "jpeg_quality": {"median": 50}})

@@ -20,7 +20,9 @@ from PIL import Image
 
 from oddling.bank.store import Bank
 from oddling.data.intake import discover, display_path, path_from_display
-from oddling.reporting.results import ScoreRow, path_from_cell, rows_to_csv, write_text
+from oddling.files import write_text
+from oddling.data.csv_cells import path_from_cell
+from oddling.reporting.results import ScoreRow, rows_to_csv
 
 POSIX_BYTES_NAMES = os.name == "posix" and sys.getfilesystemencoding().lower() in ("utf-8", "utf8")
 

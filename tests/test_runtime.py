@@ -297,7 +297,7 @@ EXPORT_RUNTIMES = ["onnx", pytest.param("openvino", marks=pytestmark_openvino)]
 @pytest.fixture(scope="module")
 def local_batch(real_batch):
     """The samples as local mode sees them: shorter side straight to 224 (no crop margin)."""
-    from oddling.detectors.patch import local_preprocessing
+    from oddling.backbones.patch_grid import local_preprocessing
 
     prep = local_preprocessing(load_backbone("efficientnet-lite0").preprocessing)
     images = [Image.fromarray(getattr(skimage_data, name)()).convert("RGB") for name in SAMPLES]

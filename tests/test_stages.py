@@ -18,7 +18,7 @@ from oddling.backbones import efficientnet_lite
 from oddling.backbones.efficientnet_lite import EfficientNetLite, EfficientNetLite0, scaled_stages
 from oddling.backbones.manifest import get_spec, parse_manifest
 from oddling.backbones.openclip import ImageTower
-from oddling.detectors.patch import grid_size, patch_features, patch_grid
+from oddling.backbones.patch_grid import grid_size, patch_features, patch_grid
 from oddling.errors import OddlingError
 
 LITE_IDS = ("efficientnet-lite0", "efficientnet-lite1", "efficientnet-lite2")
@@ -274,7 +274,7 @@ def test_lite0_class_is_the_unscaled_network():
 
 def test_bilinear_resize_weights_are_torchs_to_the_bit():
     """Reference: torch's interpolate applied to unit vectors gives its weight matrix."""
-    from oddling.detectors.patch import _bilinear_matrix
+    from oddling.backbones.patch_grid import _bilinear_matrix
 
     for n_out in (7, 14, 28, 32, 56):
         for n_in in range(1, 130):

@@ -32,7 +32,7 @@ def test_importing_oddling_does_not_load_torch():
 
 def test_the_patch_detector_module_imports_without_torch():
     out = fresh("from oddling.detectors import make_detector\nmake_detector('patch-knn')\n"
-                "import oddling.detectors.patch as p\nout['grid'] = p.grid_size(224)")
+                "import oddling.backbones.patch_grid as p\nout['grid'] = p.grid_size(224)")
     assert out["grid"] == 28 and not out["torch_loaded"]
 
 
@@ -66,7 +66,7 @@ def test_scoring_a_knn_bank_with_a_verified_export_does_not_load_torch(bank_path
         "options = oddling.RunOptions(use_cache=False, progress=False)\n"   # the network really runs
         f"result = oddling.score({str(digits_folders['incoming'])!r}, {bank_path!r}, options=options)\n"
         "out['scored'] = len(result.scored)\n"
-        "from oddling.jobs.common import load_bank_representation\n"
+        "from oddling.jobs.reading import load_bank_representation\n"
         f"rep = load_bank_representation(oddling.load_bank({bank_path!r}), options)\n"
         "out['runtime'] = rep.runtime\nout['network_built'] = rep.backbone._network is not None")
     assert out["scored"] > 0 and out["runtime"] == "openvino"

@@ -74,7 +74,7 @@ def leftovers(folder: Path, keep=()) -> list[str]:
 # --- 1. a full disk -----------------------------------------------------------------------------
 
 def test_csv_on_a_full_disk_is_a_clear_error_and_leaves_no_partial_file(tmp_path, monkeypatch):
-    from oddling.reporting.results import write_text
+    from oddling.files import write_text
 
     (tmp_path / "scores.csv").write_text("old\n")
     full_disk(monkeypatch, tmp_path)
@@ -86,7 +86,7 @@ def test_csv_on_a_full_disk_is_a_clear_error_and_leaves_no_partial_file(tmp_path
 
 
 def test_csv_written_to_dev_full_is_a_clear_error(tmp_path):
-    from oddling.reporting.results import write_text
+    from oddling.files import write_text
 
     if not os.path.exists("/dev/full"):
         pytest.skip("needs /dev/full (Linux)")
@@ -139,7 +139,7 @@ def _stub_embed(root, paths, cache):
 
 
 def _oddling_warnings(record) -> list[str]:
-    from oddling.jobs.common import OddlingWarning
+    from oddling.errors import OddlingWarning
 
     return [str(w.message) for w in record if issubclass(w.category, OddlingWarning)]
 
@@ -739,7 +739,7 @@ def _crash_a_save(tmp_path, where: str) -> Path:
 
 def test_a_crash_between_the_two_renames_is_undone_on_the_next_load(tmp_path):
     from oddling.bank.store import load_bank
-    from oddling.jobs.common import OddlingWarning
+    from oddling.errors import OddlingWarning
 
     target = _crash_a_save(tmp_path, "between renames")
     assert not target.exists()                                         # the state the crash left
@@ -984,7 +984,7 @@ def _dead_pid() -> int:
 
 def test_partial_files_of_killed_writers_are_removed_on_the_next_write(tmp_path):
     from oddling.embedding.cache import EmbeddingCache
-    from oddling.reporting.results import write_text
+    from oddling.files import write_text
 
     dead, alive = _dead_pid(), os.getppid()
     for pid in (dead, alive):
@@ -1015,7 +1015,7 @@ def test_a_half_replaced_bank_that_cannot_be_put_back_is_one_clear_error(tmp_pat
 def test_a_bank_saved_when_its_undo_copy_cannot_be_kept_warns_and_is_saved(tmp_path, monkeypatch):
     import oddling.bank.store as store
     from oddling.bank.store import load_bank
-    from oddling.jobs.common import OddlingWarning
+    from oddling.errors import OddlingWarning
     from test_bank import small_bank
 
     target = _versions(tmp_path, "1")

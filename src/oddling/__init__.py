@@ -9,11 +9,11 @@ bank's network has a verified export).
 """
 __version__ = "0.1.0"
 
-from oddling.errors import OddlingError  # noqa: E402  (light: no third-party imports)
+from oddling.errors import OddlingError, OddlingWarning  # noqa: E402  (light: no third-party imports)
 
 _LAZY = {
     "EvaluationResult": "oddling.jobs.evaluation", "evaluate": "oddling.jobs.evaluation",
-    "OddlingWarning": "oddling.jobs.common", "RunOptions": "oddling.jobs.common",
+    "RunOptions": "oddling.embedding.options",
     "ScoreResult": "oddling.jobs.scoring", "score": "oddling.jobs.scoring",
     "audit": "oddling.jobs.maintenance", "bank_add": "oddling.jobs.maintenance",
     "bank_info": "oddling.jobs.maintenance", "bank_remove": "oddling.jobs.maintenance",

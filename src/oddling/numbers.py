@@ -1,5 +1,5 @@
-"""Numbers for JSON output. Standard library only: modules that only compute (metrics, audits)
-import this without pulling in the embedding runner and torch."""
+"""Numbers as oddling writes them: rounded for JSON, and counts in words ("2 references"). Standard
+library only: modules that only compute (metrics, audits) import this without pulling in torch."""
 from __future__ import annotations
 
 import math
@@ -12,4 +12,9 @@ def json_number(value: float | None, digits: int = 6) -> float | None:
     return round(float(value), digits)
 
 
-__all__ = ["json_number"]
+def plural(n: int, word: str, many: str | None = None) -> str:
+    """"1 reference", "2 references": the count with the word in the right number."""
+    return f"{n} {word if n == 1 else (many or word + 's')}"
+
+
+__all__ = ["json_number", "plural"]

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from oddling.errors import OddlingError
+from oddling.errors import OddlingError, OddlingWarning
 from oddling.paths import cache_dir
 from oddling.backbones import onnx_runtime
 from oddling.backbones import openvino_runtime
@@ -270,8 +270,6 @@ def load_backbone(backbone_id: str = DEFAULT_BACKBONE, cache: str | Path | None 
                                f"({exc.strerror or exc}); pass --cache-dir with a writable folder, or use "
                                "--runtime torch") from exc
         import warnings
-
-        from oddling.jobs.common import OddlingWarning
 
         warnings.warn(f"cannot write the ONNX export into {onnx_file.parent} ({exc.strerror or exc}): running with "
                       "PyTorch instead (slower, same results); pass --cache-dir with a writable folder",

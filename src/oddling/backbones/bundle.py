@@ -23,9 +23,10 @@ import tarfile
 import time
 from pathlib import Path, PurePosixPath
 
-from oddling.errors import OddlingError
 from oddling.backbones.manifest import get_spec
 from oddling.backbones.weights import (Installed, prove_file, put_in_place, resolve_weights, staging_path)
+from oddling.errors import OddlingError
+from oddling.files import refuse_existing
 
 BUNDLE_MANIFEST = "oddling-weights.json"
 FORMAT = "oddling-weights-bundle"
@@ -40,8 +41,6 @@ def member_path(backbone_id: str, filename: str) -> str:
 def pack(backbone_ids, out: Path, cache: Path, force: bool = False) -> list[dict]:
     """Write the verified weight files of `backbone_ids` from the cache into the bundle `out`
     (written to a temporary sibling, then renamed). Returns the JSON's file entries."""
-    from oddling.jobs.common import refuse_existing
-
     out = Path(out)
     ids = list(dict.fromkeys(backbone_ids))
     if not ids:

@@ -3,7 +3,8 @@
 - `embedding` of a backbone: its pooled penultimate features, L2-normalised (the default).
 - `stages` of a backbone: the global average of chosen intermediate stages, each L2-normalised,
   concatenated and normalised again, so every stage weighs the same.
-- `patches` of a backbone: the chosen stages as a grid of local features (for the patch detector).
+- `patches` of a backbone: the chosen stages as a grid of local features (for the patch detector;
+  `patch_grid.py`).
 - `pixels`: a small thumbnail, grey or RGB, zero-mean and unit-norm per image: no network at all,
   which suits small, aligned images (a digit, a part always photographed the same way).
 
@@ -190,9 +191,9 @@ def load_representation(spec: RepresentationSpec | str, cache=None, runtime: str
     if spec.kind == "stages":
         return Representation(spec, net.preprocessing, channels, net,
                               _embed=lambda batch: pooled_stage_features(net, batch, spec.stages))
-    from oddling.detectors import patch
+    from oddling.backbones.patch_grid import grid_size, local_preprocessing, patch_grid
 
-    prep = patch.local_preprocessing(net.preprocessing)
-    grid = patch.grid_size(prep.crop)
+    prep = local_preprocessing(net.preprocessing)
+    grid = grid_size(prep.crop)
     return Representation(spec, prep, channels, net, patch_shape=(grid * grid, channels),
-                          _embed=lambda batch: patch.patch_grid(net.intermediates(batch, spec.stages), grid))
+                          _embed=lambda batch: patch_grid(net.intermediates(batch, spec.stages), grid))

@@ -45,7 +45,8 @@ from oddling.data.health import STATS
 from oddling.detectors import make_detector
 from oddling.detectors.base import Detector
 from oddling.detectors.conformal import GUARANTEES, ConformalThreshold, Guarantee
-from oddling.errors import OddlingError
+from oddling.errors import OddlingError, OddlingWarning
+from oddling.files import pid_alive, refuse_existing, save_array, write_failure
 
 FORMAT_NAME = "oddling-bank"
 FORMAT_VERSION = 2
@@ -101,7 +102,7 @@ class Bank:
     health_stats: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
     health_fences: dict = field(default_factory=dict)
     skipped: list[dict] = field(default_factory=list)
-    formats: dict = field(default_factory=dict)   # optional: the references' file formats (jobs.common.format_summary)
+    formats: dict = field(default_factory=dict)   # optional: the references' file formats (data.encoding.format_summary)
     vector_check: dict = field(default_factory=dict)
     path: Path | None = None
     format_version: int = FORMAT_VERSION
@@ -236,7 +237,7 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
+        raise OddlingError(write_failure(f"bank {target}", exc)) from exc
     with bank_lock(target):
         _save_locked(bank, target, force)
     bank.path = target
@@ -246,8 +247,7 @@ def save_bank(bank: Bank, path: str | os.PathLike, force: bool = False) -> Path:
 def _save_locked(bank: Bank, target: Path, force: bool) -> None:
     recover(target)
     if target.exists():
-        if not force:
-            raise OddlingError(f"{target} already exists; pass --force to replace it")
+        refuse_existing(target, force=force)
         if not target.is_dir() or not (is_bank(target) or not any(target.iterdir())):
             raise OddlingError(f"{target} exists and is not an oddling bank; refusing to replace it")
     tmp = None
@@ -276,7 +276,7 @@ def _save_locked(bank: Bank, target: Path, force: bool) -> None:
         if tmp is not None:
             shutil.rmtree(tmp, ignore_errors=True)
         if isinstance(exc, OSError):
-            raise OddlingError(_write_failure(f"bank {target}", exc)) from exc
+            raise OddlingError(write_failure(f"bank {target}", exc)) from exc
         raise
 
 
@@ -358,23 +358,6 @@ def _leftovers(target: Path) -> list[tuple[str, int, Path]]:
     return found
 
 
-def pid_alive(pid: int) -> bool:
-    """Whether process `pid` may still be running (the owner of a temporary file named after it)."""
-    if pid == os.getpid():
-        return True
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except OSError:        # exists, but not ours to signal
-        return True
-    try:                   # a killed child its parent has not reaped yet is dead too
-        with open(f"/proc/{pid}/stat", "rb") as f:
-            return f.read().rsplit(b")", 1)[-1].split()[0] != b"Z"
-    except (OSError, IndexError):
-        return True
-
-
 def recover(target: str | os.PathLike) -> None:
     """Finish what an interrupted save left; call with the bank's lock held.
 
@@ -424,8 +407,6 @@ def _mtime(path: Path) -> float:
 def _warn(message: str) -> None:
     import warnings
 
-    from oddling.jobs.common import OddlingWarning   # lazily: jobs sit above the bank
-
     warnings.warn(message, OddlingWarning, stacklevel=3)
 
 
@@ -442,27 +423,14 @@ def _umask() -> int:
     return mask
 
 
-def _write_failure(what: str, exc: OSError) -> str:
-    if exc.errno == errno.ENOSPC:
-        return f"no space left on device while writing {what}; nothing was replaced"
-    return f"could not write {what} ({exc.strerror or exc}); nothing was replaced"
-
-
-def _save_array(path: Path, array: np.ndarray) -> None:
-    with open(path, "wb") as f:
-        np.save(f, array)
-        f.flush()
-        os.fsync(f.fileno())
-
-
 def _write_files(bank: Bank, folder: Path) -> None:
     if bank.features is not None:
         # np.save writes a contiguous array (a memory map included) straight to the file, no copy
-        _save_array(folder / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=bank.vector_dtype))
-    _save_array(folder / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
-    _save_array(folder / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
+        save_array(folder / FEATURES_FILE, np.ascontiguousarray(bank.features, dtype=bank.vector_dtype))
+    save_array(folder / CALIBRATION_FILE, np.asarray(bank.calibration_scores, dtype=np.float64))
+    save_array(folder / HEALTH_FILE, np.asarray(bank.health_stats, dtype=np.float64))
     for key, array in bank.detector.state()[1].items():
-        _save_array(folder / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
+        save_array(folder / f"{DETECTOR_PREFIX}{key}.npy", np.ascontiguousarray(array))
     for key, index in bank.detector.faiss_indexes().items():
         path = folder / f"{DETECTOR_PREFIX}{key}{FAISS_SUFFIX}"
         try:
@@ -729,7 +697,7 @@ def _read_v1(f: _Fields, n: int, memory_map: bool = True):
     if mode != "local":
         f.fail("mode", f"must be global or local, got {mode!r}")
     local = f.get("local", dict)
-    from oddling.detectors.patch import local_preprocessing
+    from oddling.backbones.patch_grid import local_preprocessing
     from oddling.data.preprocess import Preprocessing
 
     prep = local_preprocessing(Preprocessing.from_dict(backbone["preprocessing"]))

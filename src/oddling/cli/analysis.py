@@ -9,12 +9,14 @@ import click
 
 from oddling import api
 from oddling.backbones import DEFAULT_BACKBONE
+from oddling.cli.options import (_options, bank_option, calibration_options, dask_option, run_options,
+                                 target_fpr_override)
+from oddling.cli.output import EXIT_ATTENTION, _num, _print_json, user_errors
 from oddling.detectors import DEFAULT_DETECTOR, DETECTORS
-from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, calibration_options,
-                                dask_option, run_options, target_fpr_override, user_errors)
 from oddling.errors import OddlingError
+from oddling.files import check_output, refuse_existing
 from oddling.index.selection import AUTO_APPROXIMATE, EXACT_BELOW
-from oddling.jobs.common import check_output, plural, refuse_existing
+from oddling.numbers import plural
 
 
 def parse_params(pairs: tuple[str, ...]) -> dict:
@@ -262,7 +264,7 @@ def report(folder, bank_path, log_path, since, until, last, out_html, labelled, 
     check_output(out_html, force=force, option="--out", example="report.html")
     if log_path is not None:
         from oddling.cli.service import bank_for_log, open_existing_log
-        from oddling.logbook.records import report_rows
+        from oddling.jobs.log_report import report_rows
         from oddling.logbook.store import parse_time
 
         if folder is not None or labelled or labels_csv:

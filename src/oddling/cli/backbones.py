@@ -6,13 +6,9 @@ from pathlib import Path
 
 import click
 
-from oddling import api
-from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
-                                target_fpr_override, user_errors)
 from oddling.backbones import DEFAULT_BACKBONE
 from oddling.backbones import manifest as backbone_manifest
-from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
+from oddling.cli.output import EXIT_ATTENTION, _print_json, user_errors
 
 cache_option = click.option("--cache-dir", type=click.Path(file_okay=False, path_type=Path), default=None,
                             help="Cache folder [default: $ODDLING_CACHE_DIR or the user cache folder].")

@@ -1,17 +1,14 @@
 """The demo on an invented scenario, and the throughput measurement."""
 from __future__ import annotations
 
-import sys
 from pathlib import Path
 
 import click
 
-from oddling import api
-from oddling.cli.common import (EXIT_ATTENTION, _num, _options, _print_json, bank_option, run_options,
-                                target_fpr_override, user_errors)
-from oddling.backbones import DEFAULT_BACKBONE, load_manifest
-from oddling.errors import OddlingError
-from oddling.jobs.common import refuse_existing
+from oddling.backbones import DEFAULT_BACKBONE
+from oddling.cli.options import _options, run_options
+from oddling.cli.output import _num, _print_json, user_errors
+
 
 @click.command()
 @click.argument("directory", type=click.Path(file_okay=False, path_type=Path), default=Path("oddling-demo"))

@@ -7,10 +7,11 @@ from pathlib import Path
 import click
 
 from oddling.backbones import RUNTIMES
-from oddling.cli.common import BANK_PATH, _print_json, bank_option, target_fpr_override, user_errors
+from oddling.cli.options import BANK_PATH, bank_option, target_fpr_override
+from oddling.cli.output import _print_json, user_errors
 from oddling.data.intake import MAX_PIXELS_DEFAULT
+from oddling.embedding.options import RunOptions
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions
 
 
 def _embedding_options(func):

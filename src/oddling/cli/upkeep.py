@@ -7,12 +7,12 @@ from pathlib import Path
 import click
 
 from oddling import api
-from oddling.cli.common import (BANK_PATH, EXIT_ATTENTION, _num, _options, _print_json, bank_option, dask_option,
-                                run_options, target_fpr_override, user_errors)
-from oddling.errors import OddlingError
+from oddling.cli.options import BANK_PATH, _options, bank_option, dask_option, run_options
+from oddling.cli.output import EXIT_ATTENTION, _num, _print_json, user_errors
 from oddling.data.intake import display_path
-from oddling.jobs.common import check_output, plural
+from oddling.files import check_output
 from oddling.jobs.maintenance import AUDIT_KINDS, removal_targets
+from oddling.numbers import plural
 
 @click.command()
 @click.argument("incoming_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
@@ -40,7 +40,7 @@ def drift(incoming_dir, bank_path, history_bank, plot_path, permutations, seed, 
         raise click.UsageError("--plot draws the history of checks: give it with --history BANK")
     if log_path is not None:
         from oddling.cli.service import bank_for_log, open_existing_log
-        from oddling.logbook.records import drift_over_log
+        from oddling.jobs.monitoring import drift_over_log
         from oddling.logbook.store import parse_time
 
         if incoming_dir is not None or history_bank is not None:

@@ -31,6 +31,7 @@ import numpy as np
 from PIL import Image
 
 from oddling.data.preprocess import Preprocessing
+from oddling.errors import OddlingWarning
 
 HEALTH_VERSION = 2
 HEALTH_SIDE = 256   # the health image's shorter side, in pixels
@@ -194,8 +195,6 @@ def _note_old_fences(skipped: list[str]) -> None:
     if _noted_old_fences:
         return
     _noted_old_fences = True
-    from oddling.jobs.common import OddlingWarning
-
     warnings.warn(
         f"this bank's image-health fences were fitted with an earlier definition of the statistics (health "
         f"version 1); its {', '.join(skipped)} findings are skipped (size findings still apply). Refit the bank "

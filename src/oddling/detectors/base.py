@@ -11,6 +11,7 @@ the CLI, the README and the review page show comes from the detector itself.
 from __future__ import annotations
 
 import hashlib
+import inspect
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -38,7 +39,8 @@ class Scores:
 
 
 class Detector:
-    """Base class. Subclasses set the class attributes and implement the four methods below."""
+    """Base class. Subclasses set the class attributes and implement the methods below; their
+    `__init__` only stores each parameter under its own name, which `get_params` reads back."""
 
     name: ClassVar[str]                 # id used in banks, the CLI and tune's leaderboard
     title: ClassVar[str]                # a few words for people, e.g. "k nearest neighbours"
@@ -46,10 +48,6 @@ class Detector:
     feature_kind: ClassVar[str] = "vector"   # "vector": (n, d); "patches": (n, locations, c)
 
     # --- to implement -------------------------------------------------------------------------
-    def get_params(self) -> dict:
-        """Constructor parameters, JSON-able: `type(self)(**get_params())` is an unfitted copy."""
-        raise NotImplementedError
-
     def fit(self, features: np.ndarray, groups: np.ndarray) -> "Detector":
         raise NotImplementedError
 
@@ -86,6 +84,35 @@ class Detector:
         """Fitted state kept as faiss indexes ({name: index with `write(path)`}), which the bank
         saves in faiss's own file format beside the arrays; none by default."""
         return {}
+
+    @classmethod
+    def param_names(cls) -> list[str]:
+        """The constructor's parameters, in the order of its signature (scikit-learn's BaseEstimator
+        reads them the same way); a constructor taking *args or **kwargs has none that can be named."""
+        if cls.__init__ is object.__init__:
+            return []
+        names = []
+        for parameter in list(inspect.signature(cls.__init__).parameters.values())[1:]:
+            if parameter.kind in (parameter.VAR_POSITIONAL, parameter.VAR_KEYWORD):
+                raise TypeError(f"{cls.__name__}.__init__ must name its parameters, not take *args or **kwargs")
+            names.append(parameter.name)
+        return names
+
+    def get_params(self) -> dict:
+        """Constructor parameters, JSON-able: `type(self)(**get_params())` is an unfitted copy."""
+        return {name: getattr(self, name) for name in self.param_names()}
+
+    def set_params(self, **params) -> "Detector":
+        """Change constructor parameters (checked at the next `fit`, like the constructor's); returns
+        self. A name the constructor does not take is an OddlingError naming the ones it does."""
+        valid = self.param_names()
+        for name in params:
+            if name not in valid:
+                raise OddlingError(f"the {self.name} detector has no parameter {name!r}; its parameters: "
+                                   f"{', '.join(valid) or 'none'}")
+        for name, value in params.items():
+            setattr(self, name, value)
+        return self
 
     def clone(self) -> "Detector":
         return type(self)(**self.get_params())

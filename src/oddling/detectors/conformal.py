@@ -36,7 +36,8 @@ DEFAULT_CONFIDENCE = 0.9
 DEFAULT_RATES = (0.01, 0.02, 0.05, 0.1)
 
 
-def _check_rate(target_fpr: float) -> float:
+def check_rate(target_fpr: float) -> float:
+    """The one check of a target false-alarm rate: a number in (0, 1), returned as a float (ValueError otherwise)."""
     if isinstance(target_fpr, bool) or not isinstance(target_fpr, (int, float)) or not 0.0 < target_fpr < 1.0:
         raise ValueError(f"target_fpr must be in (0, 1), got: {target_fpr}")
     return float(target_fpr)
@@ -74,14 +75,14 @@ def confident_p_from_counts(counts: np.ndarray, n: int, confidence: float) -> np
 
 def max_allowed_exceedances(n: int, target_fpr: float) -> int:
     """Marginal: m such that p <= a  <=>  #{c >= s} <= m; -1 when nothing can be flagged."""
-    return math.floor(_check_rate(target_fpr) * (n + 1) + _EPS) - 1
+    return math.floor(check_rate(target_fpr) * (n + 1) + _EPS) - 1
 
 
 def confident_allowed_exceedances(n: int, target_fpr: float, confidence: float) -> int:
     """Confident: the largest j with confident p-value(j) <= a, found by bisection on the same
     p-value function (it increases with j), so the cutoff and the p-values can never disagree; -1
     when even j = 0 is too many."""
-    rate = _check_rate(target_fpr)
+    rate = check_rate(target_fpr)
     low, high = -1, n - 1          # p(low) <= rate is assumed (low = -1: nothing), p(high + 1) > rate
     while low < high:
         mid = (low + high + 1) // 2
@@ -126,7 +127,7 @@ class Guarantee:
 
     def min_calibration_size(self, target_fpr: float) -> int:
         """Smallest n at which anything can be flagged at this rate."""
-        rate = _check_rate(target_fpr)
+        rate = check_rate(target_fpr)
         if self.kind == MARGINAL:
             return max(1, math.ceil(1.0 / rate - _EPS) - 1)
         # j = 0 is allowed when (1 - a)^n <= 1 - confidence; check around the closed form.
@@ -192,6 +193,12 @@ def smallest_supported_rate(n: int, guarantee: Guarantee | None = None) -> float
     return (guarantee or Guarantee()).smallest_supported_rate(n)
 
 
+def supported_rate_text(n: int, guarantee: Guarantee | None = None) -> str:
+    """What a calibration set of n scores can do, in words people can act on."""
+    lowest = smallest_supported_rate(n, guarantee)
+    return f"{n} calibration scores support target false-alarm rates >= {math.ceil(lowest * 1000) / 1000:g}"
+
+
 def flag(scores: np.ndarray, cutoff: float) -> np.ndarray:
     """scores > cutoff, as booleans; a NaN score is never flagged."""
     s = np.asarray(scores, dtype=np.float64)
@@ -209,7 +216,7 @@ class ConformalThreshold:
 
     def __init__(self, calibration_scores: np.ndarray, target_fpr: float, guarantee: Guarantee | None = None):
         self.calibration_scores = np.asarray(calibration_scores, dtype=np.float64)
-        self.target_fpr = _check_rate(target_fpr)
+        self.target_fpr = check_rate(target_fpr)
         self.guarantee = guarantee or Guarantee()
         self.cutoff = cutoff_for_rate(self.calibration_scores, self.target_fpr, self.guarantee)
 

@@ -94,9 +94,6 @@ class GaussianDetector(CrossConformalDetector):
     def __init__(self, shrinkage: str | float = "ledoit-wolf"):
         self.shrinkage = shrinkage
 
-    def get_params(self) -> dict:
-        return {"shrinkage": self.shrinkage}
-
     def _check_shrinkage(self) -> str | float:
         value = self.shrinkage
         if value in ("ledoit-wolf", "none"):

@@ -145,10 +145,6 @@ class IsolationForestDetector(CrossConformalDetector):
         self.max_samples = max_samples
         self.random_state = random_state
 
-    def get_params(self) -> dict:
-        return {"n_estimators": self.n_estimators, "max_samples": self.max_samples,
-                "random_state": self.random_state}
-
     def _check_params(self) -> None:
         def is_int(value) -> bool:
             return isinstance(value, numbers.Integral) and not isinstance(value, bool)

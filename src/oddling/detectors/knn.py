@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from oddling.detectors.base import SEED, Detector, Scores, check_features, distinct_groups
+from oddling.detectors.base import SEED, Detector, Scores, check_features, check_fitted, distinct_groups
 from oddling.errors import OddlingError
 from oddling.index import base as index_base
 from oddling.index.exact import ExactCosineIndex, check_stored
@@ -127,9 +127,6 @@ class KNNDetector(Detector):
         self.k = k
         self.index = index
 
-    def get_params(self) -> dict:
-        return {"k": self.k, "index": self.index}
-
     def _check_k(self) -> int:
         if isinstance(self.k, bool) or not isinstance(self.k, (int, np.integer)) or self.k < 1:
             raise OddlingError(f"k must be an integer >= 1, got: {self.k!r}")
@@ -199,8 +196,7 @@ class KNNDetector(Detector):
         calibration_joined (members added to the sample).
         """
         k = self._check_k()
-        if not hasattr(self, "references_"):
-            raise OddlingError("add needs a fitted detector; fit it first")
+        check_fitted(self, "references_")
         features = check_features(features)
         n_old, m = len(self.references_), len(features)
         if features.shape[1] != self.references_.shape[1]:
@@ -279,6 +275,7 @@ class KNNDetector(Detector):
         return self.index_
 
     def anomaly_score(self, features: np.ndarray, groups: np.ndarray | None = None) -> Scores:
+        check_fitted(self, "references_")
         features = check_features(features)
         if len(features) == 0:
             return Scores(np.zeros(0), np.zeros((0, self.k), np.int64), np.zeros((0, self.k)))
@@ -292,6 +289,7 @@ class KNNDetector(Detector):
     def state(self) -> tuple[dict, dict[str, np.ndarray]]:
         # The references are the bank's reference features, kept there once; an exact index is
         # rebuilt from them on load, an approximate one is saved by `faiss_indexes`.
+        check_fitted(self, "references_")
         index = self._search_index()
         state = {"calibration_method": self.calibration_method_, "index": index.describe()}
         arrays = {}
@@ -302,6 +300,7 @@ class KNNDetector(Detector):
 
     def faiss_indexes(self) -> dict:
         """An approximate index, saved by the bank in faiss's file format (`index.write`)."""
+        check_fitted(self, "references_")
         index = self._search_index()
         return {} if index.kind == "exact" else {"index": index}
 

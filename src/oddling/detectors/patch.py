@@ -1,5 +1,6 @@
-"""Local-defect mode: patch features from the backbone's middle stages, a coreset memory bank,
-nearest-patch distances as an anomaly map, and the map's maximum as the image score.
+"""Local-defect mode: a coreset memory bank of reference patches, nearest-patch distances per location
+(the anomaly map), and the map's maximum as the image score. The patch features themselves come
+from the representation (backbones/patch_grid.py); drawing the maps is reporting/heatmaps.py's.
 
 Patch-level nearest neighbours as in Cohen & Hoshen, "Sub-image anomaly detection with deep
 pyramid correspondences" (SPADE), 2020, and Roth et al., "Towards total recall in industrial
@@ -14,21 +15,12 @@ from dataclasses import dataclass
 import faiss
 import numpy as np
 
-from oddling.data.preprocess import Preprocessing
-
-# torch is imported inside the functions that run the network or its tensor ops, so loading a
+# torch is imported inside the functions that need its tensor ops (the coreset), so loading a
 # patch bank (`bank info`, `drift --history`) does not import it.
 
 MODE = "local"
-# Ends of the 24-channel (stride 4, block index 2) and 40-channel (stride 8, block 4) stages of
-# EfficientNet-Lite0, on the stride-8 grid. Measured on the brick scenario of tests/test_local.py
-# (full bank, image AUROC over 3 seeds): 24+40 0.98-1.00, 40 alone 0.95-0.99, 40+80 0.90-0.93,
-# 80+112 at stride 16 0.74-0.79. Small scratches live in the early, fine-grained stages.
-LAYERS = (2, 4)
-STRIDE = 8
 PROJECTION_DIM = 128
 SEED = 0
-MAP_SIGMA = 4.0             # pixels of the network input (PatchCore smooths at this resolution too)
 N_FOLDS = 5
 MAX_PATCHES = 16384        # the coreset's size at most: scoring cost is locations x coreset patches
 GREEDY_POOL = 50_000       # greedy k-center candidates at least (see `coreset`)
@@ -39,81 +31,6 @@ CALIBRATION_SAMPLE = 2000
 # Neighbours looked up per location when scoring: enough that one of them nearly always comes from
 # another fold than the nearest (see `fold_scores`).
 FOLD_SEARCH = 4
-
-
-def local_preprocessing(prep: Preprocessing) -> Preprocessing:
-    """Resize the shorter side straight to the crop size: the whole centre square is analysed,
-    so a defect near the border is not cropped away as the global mode's 256 -> 224 crop would."""
-    return Preprocessing(prep.crop, prep.crop, prep.interpolation, prep.mean, prep.std)
-
-
-def grid_size(crop: int) -> int:
-    return crop // STRIDE
-
-
-def patch_features(network, batch: np.ndarray, stages: tuple[str, ...] = ("stage2", "stage3")) -> np.ndarray:
-    """(N, 3, S, S) preprocessed -> (N, G*G, C) float32 patch features, G = S/8, from a PyTorch
-    network: `network.forward_intermediates` gives the named stages' outputs (the default: the
-    ends of the 24- and 40-channel stages, the same outputs as block indices LAYERS of Lite0),
-    `patch_grid` makes them patch features. The export runtimes give `patch_grid` the same
-    stage outputs (`Backbone.intermediates`)."""
-    import torch
-
-    with torch.inference_mode():
-        x = torch.from_numpy(np.ascontiguousarray(batch, dtype=np.float32)).contiguous(memory_format=torch.channels_last)
-        maps = [np.ascontiguousarray(y.float().numpy()) for y in network.forward_intermediates(x, stages)]
-    return patch_grid(maps, grid_size(batch.shape[-1]))
-
-
-def patch_grid(maps: list[np.ndarray], grid: int) -> np.ndarray:
-    """Stage outputs [(N, C_i, H_i, W_i), ...] -> (N, grid*grid, sum C_i) float32 patch features:
-    each averaged over its 3x3 neighbourhood (local context, as in PatchCore), resized to the
-    common grid and the channels concatenated in the order given. NumPy, so the export runtimes
-    need no torch; the same operations as torch's `avg_pool2d(y, 3, 1, 1, count_include_pad=False)`
-    and `interpolate(..., mode="bilinear", align_corners=False)`, within float32 rounding."""
-    outputs = []
-    for y in maps:
-        y = _mean_3x3(np.asarray(y, dtype=np.float32))
-        if y.shape[-2:] != (grid, grid):
-            y = _bilinear_matrix(y.shape[-2], grid) @ y @ _bilinear_matrix(y.shape[-1], grid).T
-        outputs.append(y)
-    feats = np.concatenate(outputs, axis=1).transpose(0, 2, 3, 1)
-    return np.ascontiguousarray(feats.reshape(len(feats), grid * grid, -1), dtype=np.float32)
-
-
-def _mean_3x3(y: np.ndarray) -> np.ndarray:
-    """Mean over each pixel's 3x3 neighbourhood of (..., H, W), counting only pixels inside the map."""
-    rows = y.copy()
-    rows[..., 1:, :] += y[..., :-1, :]
-    rows[..., :-1, :] += y[..., 1:, :]
-    out = rows.copy()
-    out[..., :, 1:] += rows[..., :, :-1]
-    out[..., :, :-1] += rows[..., :, 1:]
-    return out / np.outer(_neighbours(y.shape[-2]), _neighbours(y.shape[-1]))
-
-
-def _neighbours(n: int) -> np.ndarray:
-    count = np.full(n, 3.0, np.float32)
-    count[0] -= 1    # the first and last pixels have one neighbour less (a side of 1 pixel: only itself)
-    count[-1] -= 1
-    return count
-
-
-def _bilinear_matrix(n_in: int, n_out: int) -> np.ndarray:
-    """(n_out, n_in) weights of bilinear resizing along one axis with half-pixel centres
-    (align_corners=False): source = (i + 0.5) * n_in / n_out - 0.5, clamped at 0, rounded to
-    float32 as torch's CPU kernel computes it (so the weights are torch's to the bit, checked for
-    1..129 -> 7..56 pixels; computed in float64 they differ by up to 1e-5)."""
-    scale = np.float64(np.float32(n_in) / np.float32(n_out))
-    # One rounding to float32 after the multiply-subtract, as a fused multiply-add gives.
-    source = np.maximum(scale * (np.arange(n_out) + 0.5) - 0.5, 0.0).astype(np.float32)
-    low = np.minimum(source.astype(np.int64), n_in - 1)
-    high = np.minimum(low + 1, n_in - 1)
-    frac = source - low.astype(np.float32)
-    weights = np.zeros((n_out, n_in), np.float32)
-    np.add.at(weights, (np.arange(n_out), low), 1.0 - frac)
-    np.add.at(weights, (np.arange(n_out), high), frac)
-    return weights
 
 
 def random_projection(dim: int, out_dim: int = PROJECTION_DIM, seed: int = SEED) -> np.ndarray:
@@ -248,42 +165,6 @@ def fold_scores(index: PatchIndex, patch_sources: np.ndarray, patch_folds: np.nd
     return PatchScores(per_fold.mean(axis=1), maps.reshape(n, grid, grid), sources)
 
 
-def upsample_map(grid_map: np.ndarray, size: tuple[int, int], crop: int = 224, sigma: float = MAP_SIGMA) -> np.ndarray:
-    """Grid map -> (height, width) map of the analysed centre square at image resolution.
-
-    Bilinear upsampling to the network input, Gaussian smoothing there (sigma in input pixels),
-    then resizing to the square's side in the image; outside that square (non-square images)
-    nothing was analysed and the map is 0.
-    """
-    import torch
-    import torch.nn.functional as F
-    from scipy.ndimage import gaussian_filter
-
-    width, height = size
-    t = torch.from_numpy(np.asarray(grid_map, dtype=np.float32))[None, None]
-    full = F.interpolate(t, size=(crop, crop), mode="bilinear", align_corners=False)[0, 0].numpy()
-    full = gaussian_filter(full, sigma=sigma, mode="nearest")
-    side = min(width, height)
-    square = F.interpolate(torch.from_numpy(full)[None, None], size=(side, side), mode="bilinear",
-                           align_corners=False)[0, 0].numpy()
-    out = np.zeros((height, width), dtype=np.float32)
-    top, left = int(round((height - side) / 2.0)), int(round((width - side) / 2.0))
-    out[top:top + side, left:left + side] = square
-    return out
-
-
-def overlay(image, heat: np.ndarray, vmax: float | None = None):
-    """The image with the anomaly map blended over it (jet colours from 0 to vmax, alpha 0.5)."""
-    from matplotlib import colormaps
-    from PIL import Image
-
-    top = float(vmax) if vmax else (float(heat.max()) or 1.0)
-    colours = colormaps["jet"](np.clip(heat / top, 0.0, 1.0))[..., :3]
-    base = np.asarray(image.convert("RGB"), dtype=np.float32) / 255.0
-    blended = (0.5 * base + 0.5 * colours) * 255.0
-    return Image.fromarray(blended.clip(0, 255).astype(np.uint8))
-
-
 @dataclass
 class FoldBank:
     patches: np.ndarray            # (m, c) the folds' coresets, fold by fold
@@ -339,7 +220,8 @@ def calibration_rows(n: int, seed: int = SEED) -> np.ndarray:
     return np.sort(np.random.default_rng([seed, n]).choice(n, CALIBRATION_SAMPLE, replace=False))
 
 
-from oddling.detectors.base import Detector, Scores, check_features, check_fitted, distinct_groups  # noqa: E402
+from oddling.detectors.base import (Detector, Scores, check_features, check_fitted, distinct_groups,  # noqa: E402
+                                    group_folds)
 from oddling.errors import OddlingError  # noqa: E402
 
 
@@ -390,9 +272,6 @@ class PatchKNNDetector(Detector):
         self.folds = folds
         self.max_patches = max_patches
 
-    def get_params(self) -> dict:
-        return {"coreset": self.coreset, "seed": self.seed, "folds": self.folds, "max_patches": self.max_patches}
-
     def _check_params(self) -> None:
         if isinstance(self.coreset, bool) or not isinstance(self.coreset, (int, float)) or not 0.0 < self.coreset <= 1.0:
             raise OddlingError(f"coreset must be in (0, 1], got: {self.coreset!r}")
@@ -404,7 +283,6 @@ class PatchKNNDetector(Detector):
             raise OddlingError(f"max_patches must be an integer >= folds ({self.folds}), got: {self.max_patches!r}")
 
     def fit(self, features: np.ndarray, groups: np.ndarray | None = None) -> "PatchKNNDetector":
-        from oddling.detectors.base import check_features, distinct_groups, group_folds
         self._check_params()
         features = check_features(features, "patches")
         groups = distinct_groups(groups, len(features))

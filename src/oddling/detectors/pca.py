@@ -70,9 +70,6 @@ class PCADetector(CrossConformalDetector):
     def __init__(self, variance: float = 0.95):
         self.variance = variance
 
-    def get_params(self) -> dict:
-        return {"variance": self.variance}
-
     def _check_variance(self) -> float:
         value = self.variance
         if isinstance(value, numbers.Real) and not isinstance(value, bool) and 0.0 < value <= 1.0:

@@ -57,6 +57,8 @@ from pathlib import Path
 import numpy as np
 
 from oddling.data.health import STATS
+from oddling.errors import OddlingWarning
+from oddling.files import remove_stale_partials
 
 FLUSH_EVERY = 256        # new vectors per transaction: bounds the work lost to a hard kill
 KEY_FILE = "cache.key"   # the secret that signs this cache's rows
@@ -80,8 +82,6 @@ CREATE TABLE IF NOT EXISTS features (
 
 
 def _warn(message: str) -> None:
-    from oddling.jobs.common import OddlingWarning   # lazily: jobs sit above embedding
-
     warnings.warn(message, OddlingWarning, stacklevel=3)
 
 
@@ -139,6 +139,30 @@ class _Untrusted(Exception):
 
 class _DamagedFile(Exception):
     """The database file is not a usable SQLite database."""
+
+
+def open_cache(representation, options) -> "EmbeddingCache | None":
+    """The embedding cache a run with `options` (RunOptions) uses for `representation`, or None when
+    caching is off or the representation is not cached (patch grids). Every row read back must have
+    the representation's dimension, and unit length where its features are normalised. A cache
+    folder that cannot be used is said once, in one OddlingWarning (by the cache itself, or here when
+    it cannot even be opened: then None), and the run goes on without it."""
+    from oddling.paths import cache_dir
+
+    if not (options.use_cache and representation.cacheable):
+        return None
+    folder = cache_dir(options.cache_dir)
+    try:
+        return EmbeddingCache.open(folder, representation.cache_fingerprint(), representation.runtime,
+                                   dim=representation.embedding_dim,
+                                   # network features are unit length; a pixel thumbnail of a flat image is 0
+                                   unit_norm=representation.spec.kind in ("embedding", "stages"))
+        # (a folder it cannot write is still read; the cache says so once itself)
+    except OSError as exc:
+        warnings.warn(f"the embedding cache in {folder} is not usable ({exc.strerror or exc}): running "
+                      "without it (nothing is reused or saved); pass --cache-dir with a writable folder, "
+                      "or --no-cache to say so", OddlingWarning, stacklevel=3)
+        return None
 
 
 class EmbeddingCache:
@@ -515,7 +539,8 @@ class EmbeddingCache:
         """Move the rows of earlier releases' chunk files into the database, once (see the module doc)."""
         if not self.writable:
             return
-        self._remove_stale_partials()
+        # half-written chunks of earlier releases' processes that were killed (`.chunk-*.npz.partial-PID`)
+        remove_stale_partials(self.folder, ".chunk-*.npz.partial-*")
         damaged: list[tuple[Path, str]] = []
         for path in sorted(self.folder.glob("chunk-*.npz")):
             try:
@@ -536,18 +561,6 @@ class EmbeddingCache:
                 pass
         if damaged:
             self._drop(damaged, report)
-
-    def _remove_stale_partials(self) -> None:
-        """Half-written chunks of earlier releases' processes that were killed (`.chunk-*.npz.partial-PID`)."""
-        from oddling.bank.store import pid_alive
-
-        for path in self.folder.glob(".chunk-*.npz.partial-*"):
-            pid = path.name.rsplit("-", 1)[-1]
-            if pid.isdigit() and not pid_alive(int(pid)):
-                try:
-                    path.unlink()
-                except OSError:
-                    pass
 
     def _chunk_signature(self, hashes, vectors: np.ndarray, health: np.ndarray) -> str:
         """The earlier releases' HMAC-SHA256 of a whole chunk: cache key, content hashes, vectors, health rows."""

@@ -95,11 +95,11 @@ class RepresentationPlugin(WorkerPlugin):
 
 
 def _load_checked(setup: WorkerSetup):
-    import oddling
+    from oddling import __version__
     from oddling.backbones.representation import load_representation
 
-    if oddling.__version__ != setup.version:
-        raise OddlingError(f"this Dask worker runs oddling {oddling.__version__}, the client {setup.version}: "
+    if __version__ != setup.version:
+        raise OddlingError(f"this Dask worker runs oddling {__version__}, the client {setup.version}: "
                            "install the same version on every worker")
     representation = load_representation(setup.spec, setup.cache_dir, setup.runtime)
     if representation.cache_fingerprint() != setup.fingerprint or representation.runtime != setup.runtime_made:
@@ -145,7 +145,7 @@ def embed_on_cluster(address: str, root: Path, paths: list[Path], representation
     workers load the same. With a `cache` holding vectors, files are hashed here first and the
     cached ones are not sent (their batches then differ from a run without the cache, as locally).
     """
-    import oddling
+    from oddling import __version__
 
     if batch_size < 1:
         raise ValueError(f"batch_size must be >= 1, got: {batch_size}")
@@ -162,7 +162,7 @@ def embed_on_cluster(address: str, root: Path, paths: list[Path], representation
             todo = _answer_here(root, paths, cache, slots, workers, bar)
         if todo:
             setup = WorkerSetup(representation.spec, None if cache_dir is None else str(cache_dir), runtime,
-                                representation.cache_fingerprint(), representation.runtime, oddling.__version__)
+                                representation.cache_fingerprint(), representation.runtime, __version__)
             # One name per run, removed at its end: the workers do not keep this run's network.
             name = f"oddling-representation-{uuid.uuid4().hex}"
             client.register_plugin(RepresentationPlugin(setup), name=name)

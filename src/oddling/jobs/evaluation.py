@@ -9,10 +9,14 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import Bank
+from oddling.embedding.options import RunOptions
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, check_rate, embed_folder, folder, load_bank_representation, plural
+from oddling.files import refuse_existing, write_text
+from oddling.jobs.rates import check_target_rate
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
 from oddling.jobs.scoring import as_bank, rows_from_embedded, warn_about_encoding
-from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows, write_text
+from oddling.numbers import plural
+from oddling.reporting.results import ScoreRow, rows_to_csv, sort_rows
 
 
 @dataclass
@@ -38,11 +42,9 @@ class EvaluationResult:
 
         out = Path(out_dir)
         names = {"metrics": "metrics.json", "scores": "scores.csv", "roc": "roc.png", "pr": "pr.png"}
-        clash = [n for n in names.values() if (out / n).exists()]
-        if clash and not force:
-            raise OddlingError(f"{out} already holds {', '.join(clash)}; pass --force to replace them")
-        out.mkdir(parents=True, exist_ok=True)
         paths = {key: out / name for key, name in names.items()}
+        refuse_existing(*paths.values(), force=force)
+        out.mkdir(parents=True, exist_ok=True)
         write_text(paths["metrics"], json.dumps(self.metrics, indent=2, sort_keys=True) + "\n", force=True)
         write_text(paths["scores"], rows_to_csv(self.rows, with_labels=True), force=True)
         fpr, tpr, _ = m.roc_curve(self.labels, self.scores)
@@ -147,7 +149,7 @@ def evaluate(
         raise OddlingError(f"beta must be > 0, got: {beta}")
     bank = as_bank(bank)
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     rep = load_bank_representation(bank, options)
     embedded = embed_folder(test_dir, rep, options, "evaluating", (bank.path,) if bank.path else ())
     rows, cutoff = rows_from_embedded(bank, embedded, target_fpr)

@@ -11,13 +11,16 @@ from oddling import __version__
 from oddling.backbones.representation import RepresentationSpec, load_representation
 from oddling.bank.store import Bank, save_bank
 from oddling.bank.vectors import check_dtype, check_float16
+from oddling.data.encoding import format_summary, image_format
 from oddling.data.health import STATS, fit_fences
 from oddling.detectors import DEFAULT_DETECTOR, make_detector
 from oddling.detectors.conformal import DEFAULT_RATES, MARGINAL, ConformalThreshold, Guarantee, default_rate
+from oddling.embedding.options import RunOptions
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
-                                 no_images_message, refuse_existing, warn_if_few_calibration)
+from oddling.files import refuse_existing
+from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
+from oddling.jobs.reading import embed_folder, folder, no_images_message
 from oddling.numbers import json_number
 from oddling.progress import progress_shown
 
@@ -222,7 +225,7 @@ def fit(
     check_pairing(spec, model)
     vector_dtype = check_vector_dtype(vector_dtype, spec, model)
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     promise = make_guarantee(guarantee, confidence)
     refuse_existing(bank_path, force=force)
     rep = load_representation(spec, options.cache_dir, options.runtime)

@@ -10,13 +10,14 @@ import numpy as np
 
 from oddling.bank.store import Bank, bank_lock, load_bank, previous_path, restore_previous, save_bank
 from oddling.data.intake import walk
-from oddling.detectors.conformal import smallest_supported_rate
+from oddling.detectors.conformal import smallest_supported_rate, supported_rate_text
+from oddling.embedding.options import RunOptions
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
-from oddling.jobs.common import (RunOptions, embed_paths, load_bank_representation, no_images_message, plural,
-                                 supported_rate_text)
 from oddling.jobs.fitting import calibration_record, fences_from_table, reference_entry, references_formats
+from oddling.jobs.reading import embed_paths, load_bank_representation, no_images_message
 from oddling.jobs.scoring import as_bank
+from oddling.numbers import plural
 
 
 def require_features(bank: Bank, what: str) -> None:
@@ -76,7 +77,7 @@ def _read_decisions(csv_path: Path, root: Path | None) -> list[Path]:
         if not reader.fieldnames or not {"path", "decision"} <= set(reader.fieldnames):
             raise OddlingError(f"{csv_path} must have columns path,decision (got {reader.fieldnames})")
         rows = list(reader)
-    from oddling.reporting.results import path_from_cell
+    from oddling.data.csv_cells import path_from_cell
 
     files, outside = [], []
     for row in rows:

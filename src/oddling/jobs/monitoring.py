@@ -1,4 +1,5 @@
-"""Has the incoming stream moved away from the references? Batch shift tests and their history."""
+"""Has the incoming stream moved away from the references? Shift tests of a batch folder or of logged
+images, and their history."""
 from __future__ import annotations
 
 import datetime as _dt
@@ -9,10 +10,12 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import HISTORY_FILE, Bank, load_bank
+from oddling.embedding.options import RunOptions
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, embed_folder, folder, load_bank_representation
 from oddling.jobs.maintenance import require_features
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
 from oddling.jobs.scoring import as_bank, score_features
+from oddling.logbook.store import ScoreLog
 from oddling.numbers import json_number
 
 
@@ -51,6 +54,60 @@ def drift(
         "n_batch": n,
         "n_bank": bank.size,
     } | shift_figures(mmd, share, int(flagged.sum()), shift, n_permutations)
+    if record and bank.path is not None:
+        record_history(bank, result)
+    return result
+
+
+def drift_over_log(log: ScoreLog, bank, *, last: int | None = None, since: str | None = None,
+                   n_permutations: int = 500, seed: int = 0, record: bool = False, options=None,
+                   representation=None, cache=None) -> dict:
+    """The shift test of `oddling drift` over logged images of this bank: the newest `last` scored
+    rows, or those logged since `since` (log time text, see store.parse_time).
+
+    MMD between the logged images' features (distinct contents) and the bank's, and the exact
+    binomial test of the share of logged scores above the bank's cutoff; same rule as `drift`.
+    """
+    from oddling.evaluation.shift import flagged_share_test, mmd_permutation_test, shift_verdict
+    from oddling.logbook.records import logged_features
+    from oddling.logbook.store import bank_fingerprint
+
+    if (last is None) == (since is None):
+        raise OddlingError("give one of --last N or --since TIME")
+    options = options or RunOptions()
+    require_features(bank, "drift")
+    fp = bank_fingerprint(bank)
+    rows = log.rows(last=last, since=since, bank=fp, ok_only=True)
+    if len(rows) < 2:
+        other = log.rows(last=last, since=since, ok_only=True)
+        hint = (f"; {len(other)} scored rows there belong to other banks (refitted or replaced banks get a new "
+                "fingerprint)" if len(other) > len(rows) else "")
+        raise OddlingError(f"log {log.path} has {len(rows)} scored images of this bank in that window; a shift "
+                           f"test needs at least 2{hint}")
+    if representation is None:
+        representation = load_bank_representation(bank, options)
+    features, kept = logged_features(rows, representation, options, cache)
+    cutoff = bank.threshold().cutoff
+    n_flagged = sum(1 for r in rows if r.score is not None and r.score > cutoff)
+    share = flagged_share_test(n_flagged, len(rows), bank.target_fpr)
+    if len(features) < 2:
+        raise OddlingError(f"the features of only {len(features)} of the {len(set(r.sha256 for r in rows))} distinct "
+                           "logged images are available (neither in the embedding cache nor in files that still "
+                           "exist); a shift test needs at least 2")
+    mmd = mmd_permutation_test(features, bank.features, n_permutations=n_permutations, seed=seed)
+    shift = shift_verdict(mmd["p_value"], share["binomial_p_value"])
+    window = f"last {last}" if last is not None else f"since {since}"
+    result = {
+        "batch": f"log {log.path} ({window})",
+        "log": str(log.path),
+        "window": window,
+        "first_time": rows[0].time,
+        "last_time": rows[-1].time,
+        "n_rows": len(rows),
+        "n_batch": len(features),
+        "n_without_features": len(set(r.sha256 for r in rows if r.sha256)) - len(kept),
+        "n_bank": bank.size,
+    } | shift_figures(mmd, share, n_flagged, shift, n_permutations)
     if record and bank.path is not None:
         record_history(bank, result)
     return result

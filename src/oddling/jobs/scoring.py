@@ -8,12 +8,15 @@ from pathlib import Path
 import numpy as np
 
 from oddling.bank.store import Bank, load_bank
+from oddling.data.encoding import format_summary, image_format, warn_if_other_encoding
 from oddling.data.health import health_findings, health_text
 from oddling.detectors.base import Scores
+from oddling.embedding.options import RunOptions
 from oddling.errors import OddlingError
-from oddling.jobs.common import (RunOptions, check_rate, embed_folder, folder, format_summary, image_format,
-                                 load_bank_representation, warn_if_few_calibration, warn_if_other_encoding)
-from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows, write_text
+from oddling.files import write_text
+from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
+from oddling.jobs.reading import embed_folder, folder, load_bank_representation
+from oddling.reporting.results import ScoreRow, json_number, rows_to_csv, sort_rows
 
 
 def as_bank(bank: Bank | str | os.PathLike) -> Bank:
@@ -86,7 +89,7 @@ class ScoreResult:
         as is for a .png), so a.jpg and a.png never overwrite each other. Colours run from 0 to the
         batch's highest score, so maps of one batch compare."""
         from oddling.data.intake import load_rgb
-        from oddling.detectors.patch import overlay
+        from oddling.reporting.heatmaps import overlay
 
         if not any(r.anomaly_grid is not None for r in self.scored) and self.scored:
             raise OddlingError(f"anomaly maps need a detector that scores locations (patch-knn); this bank's "
@@ -103,7 +106,7 @@ class ScoreResult:
 
 
 def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | None = None) -> np.ndarray:
-    from oddling.detectors.patch import upsample_map
+    from oddling.reporting.heatmaps import upsample_map
 
     if row.anomaly_grid is None:
         raise OddlingError(f"{row.path} has no anomaly map (needs a patch-detector bank and a readable image)")
@@ -182,7 +185,7 @@ def rows_from_embedded(bank: Bank, embedded, target_fpr: float | None,
 
 def warn_about_encoding(bank: Bank, root: Path, rows: list[ScoreRow]) -> None:
     """OddlingWarning when the scored files are encoded unlike the bank's references (format, JPEG
-    quality): jobs.common.warn_if_other_encoding. Reads each scored file's header, no pixels."""
+    quality): data.encoding.warn_if_other_encoding. Reads each scored file's header, no pixels."""
     if not bank.formats:
         return
     batch = format_summary(image_format(root / r.path) for r in rows if r.score is not None)
@@ -213,7 +216,7 @@ def score(
     incoming_dir = folder(incoming_dir, "incoming folder")
     bank = as_bank(bank)
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     if require_cutoff:
         require_flagging(bank, target_fpr, "--fail-on-flagged")
     warn_if_few_calibration(bank.threshold(target_fpr))

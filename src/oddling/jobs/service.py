@@ -27,8 +27,8 @@ from pathlib import Path
 import numpy as np
 
 from oddling.data.intake import IMAGE_SUFFIXES, MAX_PIXELS_DEFAULT, ORIGINAL_SIZE, IntakeError, check_type, load_rgb
+from oddling.embedding.options import RunOptions
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions
 
 API_PREFIX = "/v1"
 MAX_NAME_CHARS = 512
@@ -269,13 +269,13 @@ class ScoringEngine:
         self._loop()
 
     def _load(self) -> None:
-        from oddling.jobs.common import load_bank_representation
-        from oddling.logbook.records import _open_cache
+        from oddling.jobs.reading import load_bank_representation
+        from oddling.embedding.cache import open_cache
         from oddling.logbook.store import ScoreLog
 
         options = self.config.options
         self.representation = load_bank_representation(self.bank, options)
-        self.cache = _open_cache(self.representation, options)
+        self.cache = open_cache(self.representation, options)
         if self.config.log_path is not None:
             self.log = ScoreLog(self.config.log_path, bank_path=self.bank.path)
 
@@ -657,7 +657,7 @@ def serve_app(bank, *, log=None, token: str | None = None, config: ServiceConfig
     @app.get(f"{API_PREFIX}/drift", summary="Shift verdict over the last N logged images")
     async def drift(request: Request, last: int = Query(100, ge=2, le=5000),
                     permutations: int = Query(500, ge=19, le=5000)):
-        from oddling.logbook.records import drift_over_log
+        from oddling.jobs.monitoring import drift_over_log
 
         authorise(request)
         require_ready()

@@ -37,13 +37,16 @@ from oddling.backbones.representation import RepresentationSpec, load_representa
 from oddling.bank.store import save_bank
 from oddling.data.intake import IntakeError, check_type, discover, sha256_file
 from oddling.detectors import make_detector
+from oddling.embedding.options import RunOptions
 from oddling.embedding.runner import OK
 from oddling.errors import OddlingError
 from oddling.evaluation.metrics import CI_METHOD, content_counts
-from oddling.jobs.common import (OddlingWarning, RunOptions, check_rate, embed_paths, folder, refuse_existing,
-                                 warn_if_few_calibration)
+from oddling.errors import OddlingWarning
+from oddling.files import refuse_existing, write_text
 from oddling.jobs.evaluation import attach_labels, copies_notes
-from oddling.reporting.results import ScoreRow, json_number, write_text
+from oddling.jobs.rates import check_target_rate, warn_if_few_calibration
+from oddling.jobs.reading import embed_paths, folder
+from oddling.reporting.results import ScoreRow, json_number
 
 MIN_PER_CLASS = 10     # below this an AUROC, let alone a choice between configurations, means little
 TIE = 0.005            # AUROC differences this small are noise at the usual test-set sizes
@@ -275,7 +278,7 @@ def tune(
     options = options or RunOptions()
     test_dir, reference_dir = folder(test_dir, "test folder"), folder(reference_dir, "reference folder")
     if target_fpr is not None:
-        target_fpr = check_rate(target_fpr)
+        target_fpr = check_target_rate(target_fpr)
     promise = make_guarantee(guarantee, confidence)
     if budget_minutes is not None and budget_minutes <= 0:
         raise OddlingError(f"budget must be > 0 minutes, got: {budget_minutes}")

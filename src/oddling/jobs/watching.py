@@ -22,8 +22,10 @@ from pathlib import Path
 import numpy as np
 
 from oddling.data.intake import IntakeError, check_type, display_path, sha256_file, walk
+from oddling.embedding.options import RunOptions
 from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions, check_rate, folder
+from oddling.jobs.rates import check_target_rate
+from oddling.jobs.reading import folder
 
 DUPLICATE_STATUS = "skipped: same content as a file scored before"
 
@@ -48,9 +50,10 @@ class Watcher:
                  settle_seconds: float = 1.0, drift_every: int = 100, drift_window: int = 200,
                  drift_permutations: int = 500, target_fpr: float | None = None, options: RunOptions | None = None,
                  echo=_echo):
-        from oddling.jobs.common import load_bank_representation
+        from oddling.jobs.reading import load_bank_representation
         from oddling.jobs.scoring import as_bank, require_flagging
-        from oddling.logbook.records import _open_cache, new_request_id
+        from oddling.embedding.cache import open_cache
+        from oddling.logbook.records import new_request_id
         from oddling.logbook.store import bank_fingerprint, default_log_path, ScoreLog
 
         self.incoming = folder(incoming_dir, "incoming folder")
@@ -63,7 +66,7 @@ class Watcher:
         self.poll_seconds, self.settle_seconds = float(poll_seconds), float(settle_seconds)
         self.drift_every, self.drift_window, self.drift_permutations = int(drift_every), int(drift_window), int(
             drift_permutations)
-        self.target_fpr = check_rate(target_fpr) if target_fpr is not None else None
+        self.target_fpr = check_target_rate(target_fpr) if target_fpr is not None else None
         require_flagging(self.bank, self.target_fpr, "watch")
         self.options = options or RunOptions(progress=False)
         self.echo = echo
@@ -84,7 +87,7 @@ class Watcher:
         self.fingerprint = bank_fingerprint(self.bank)
         self.run_id = new_request_id()
         self.representation = load_bank_representation(self.bank, self.options)
-        self.cache = _open_cache(self.representation, self.options)
+        self.cache = open_cache(self.representation, self.options)
         # What the log says this bank's watchers have already done.
         self._seen_hashes: set[str] = set()
         self._seen_pairs: set[tuple[str, str]] = set()

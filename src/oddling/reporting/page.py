@@ -23,10 +23,11 @@ from PIL import Image
 
 from oddling import __version__
 from oddling.bank.store import Bank
-from oddling.errors import OddlingError
 from oddling.data.intake import IntakeError, display_path, load_rgb
-from oddling.jobs.common import supported_rate_text
-from oddling.reporting.results import ScoreRow, sort_rows, write_text
+from oddling.detectors.conformal import supported_rate_text
+from oddling.errors import OddlingError
+from oddling.files import refuse_existing, write_text
+from oddling.reporting.results import ScoreRow, sort_rows
 
 def _asset(name: str) -> str:
     """The page's CSS and JavaScript live as package files beside this module (reporting/assets/)."""
@@ -106,9 +107,7 @@ def write_report(
 
     plots = plots_folder(out_html)
     plot_names = [HISTOGRAM_FILE] + ([ROC_FILE, PR_FILE] if metrics is not None else [])
-    clash = [p for p in [out_html] + [plots / n for n in plot_names] if p.exists()]
-    if clash and not force:
-        raise OddlingError(f"{clash[0]} already exists; pass --force to overwrite it")
+    refuse_existing(out_html, *[plots / n for n in plot_names], force=force)
 
     rows = sort_rows(list(result.rows))
     scored = [r for r in rows if r.score is not None]
@@ -230,7 +229,7 @@ def thumbnail_uri(path: Path, px: int) -> str | None:
 
 def heatmap_uri(path: Path, row: ScoreRow, crop: int, px: int, vmax: float) -> str | None:
     """Local mode: a JPEG data URI of the image with its anomaly map over it, like the thumbnail."""
-    from oddling.detectors.patch import overlay, upsample_map
+    from oddling.reporting.heatmaps import overlay, upsample_map
 
     try:
         image = load_rgb(path, min_side=px)
@@ -552,8 +551,8 @@ _CSS = _asset("page.css")
 
 
 # The decisions export's cell functions (also run on their own by tests/test_hostile.py).
-# csvText is results.csv_text for a path already in display form (data-path holds
-# display_path); results.path_from_cell reads an exported path back.
+# csvText is data.csv_cells.csv_text for a path already in display form (data-path holds
+# display_path); csv_cells.path_from_cell reads an exported path back.
 CSV_CELLS_JS = _asset("csv_cells.js")
 
 

@@ -1,15 +1,10 @@
 """Per-file results and their files: the scores CSV (sorted, every input accounted for) and the JSON summary."""
 from __future__ import annotations
 
-import errno
 import math
-import os
-import re
 from dataclasses import dataclass, field
-from glob import escape as glob_escape
-from pathlib import Path
 
-from oddling.data.intake import display_path, path_from_display
+from oddling.data.csv_cells import csv_field, csv_text
 from oddling.embedding.runner import OK
 from oddling.numbers import json_number  # noqa: F401  (re-exported: its home is oddling.numbers)
 
@@ -56,41 +51,8 @@ def _num(value: float | None, digits: int = 6) -> str:
     return f"{value:.{digits}f}"
 
 
-# OWASP "CSV Injection": a spreadsheet runs a cell starting with = + - @ TAB or CR as a formula.
-# Such a text cell gets one leading single quote. Cells that already start with single quotes
-# followed by one of those get one more, so the rule stays reversible (see path_from_cell).
-FORMULA_START = re.compile("^'*[=+\\-@\t\r]")
-_QUOTED_FORMULA = re.compile("^'+[=+\\-@\t\r]")
-
-
-def csv_text(value: str) -> str:
-    """A text cell of a CSV (path, nearest, health, status, kind; never a number): the path as
-    intake.display_path writes it, then neutralised against formula injection."""
-    text = display_path(value)
-    return "'" + text if FORMULA_START.match(text) else text
-
-
-def path_from_cell(cell: str) -> str:
-    """The inverse of csv_text: the str that opens the real file, from a path cell of the scores
-    CSV or the page's decisions export (one leading ' dropped, then intake.path_from_display)."""
-    if _QUOTED_FORMULA.match(cell):
-        cell = cell[1:]
-    return path_from_display(cell)
-
-
-def _field(cell: str) -> str:
-    """RFC 4180 quoting: a cell holding a comma, a double quote, CR or LF is quoted, quotes doubled.
-
-    csv.writer's QUOTE_MINIMAL quotes only the characters of its line terminator ("\\n" here), so
-    a lone "\\r" in a file name went out unquoted and split the row for every reader.
-    """
-    if any(c in cell for c in ',"\r\n'):
-        return '"' + cell.replace('"', '""') + '"'
-    return cell
-
-
 def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
-    """The scores CSV: one line per row ending in "\\n", cells quoted as _field says."""
+    """The scores CSV: one line per row ending in "\\n", cells quoted as csv_field says."""
     columns = SCORE_COLUMNS + (["label", "kind"] if with_labels else [])
     lines = [columns]
     for r in rows:
@@ -107,51 +69,7 @@ def rows_to_csv(rows: list[ScoreRow], with_labels: bool = False) -> str:
         if with_labels:
             line += ["" if r.label is None else ("anomalous" if r.label else "normal"), csv_text(r.kind or "")]
         lines.append(line)
-    return "".join(",".join(_field(cell) for cell in line) + "\n" for line in lines)
-
-
-def _remove_stale_partials(path: Path) -> None:
-    """`.NAME.partial-PID` files that writers killed midway left beside `path`."""
-    from oddling.bank.store import pid_alive
-
-    for stale in path.parent.glob(f".{glob_escape(path.name)}.partial-*"):
-        pid = stale.name.rsplit("-", 1)[-1]
-        if pid.isdigit() and not pid_alive(int(pid)):
-            try:
-                stale.unlink()
-            except OSError:
-                pass
-
-
-def write_text(path: Path, text: str, force: bool = False) -> Path:
-    """Write a result file, refusing to replace an existing one unless asked."""
-    path = Path(path)
-    if path.exists() and not force:
-        from oddling.errors import OddlingError
-
-        raise OddlingError(f"{path} already exists; pass --force to overwrite it")
-    tmp = path.with_name(f".{path.name}.partial-{os.getpid()}")
-    _remove_stale_partials(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        with open(tmp, "w", encoding="utf-8") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())   # a full disk may only say so here
-        os.replace(tmp, path)
-    except BaseException as exc:
-        try:
-            tmp.unlink(missing_ok=True)
-        except OSError:
-            pass
-        if not isinstance(exc, OSError):
-            raise
-        from oddling.errors import OddlingError
-
-        if exc.errno == errno.ENOSPC:
-            raise OddlingError(f"no space left on device while writing {path}; nothing was replaced") from exc
-        raise OddlingError(f"could not write {path} ({exc.strerror or exc}); nothing was replaced") from exc
-    return path
+    return "".join(",".join(csv_field(cell) for cell in line) + "\n" for line in lines)
 
 
 def count_ok(rows: list[ScoreRow]) -> int:

@@ -1,61 +1,14 @@
-"""What every command shares: turning user mistakes into one line and exit 2, the run options,
-the options several commands declare, and printing helpers."""
+"""The options several commands declare, declared once: how to run the representation (turned into
+RunOptions), the bank, Dask, and what a new bank's cutoff promises."""
 from __future__ import annotations
 
 import functools
-import json
-import signal
-import sys
-import threading
-import warnings
 from pathlib import Path
 
 import click
 
 from oddling.backbones import PRECISIONS, RUNTIMES
-from oddling.errors import OddlingError
-from oddling.jobs.common import RunOptions
-
-from oddling.errors import OddlingError
-
-EXIT_ATTENTION = 1   # the job ran, and something a flag asked about needs attention
-EXIT_BAD_INPUT = 2   # click's convention for usage errors; we use it for bad input too
-
-
-def _show_warning(message, category, filename, lineno, file=None, line=None):
-    click.echo(f"warning: {message}", err=True)
-
-
-def _terminate(signum, frame):
-    raise KeyboardInterrupt   # SIGTERM (a kill, a service stop) ends the run like Ctrl-C
-
-
-def user_errors(func):
-    """Turn user mistakes into a one-line message and exit code 2 instead of a traceback.
-
-    SIGTERM is handled like Ctrl-C: the cache keeps the finished work, temporary files are
-    removed, and the exit code is 130.
-    """
-
-    @functools.wraps(func)
-    def wrapper(*args, **kwargs):
-        warnings.showwarning = _show_warning
-        previous = None
-        if threading.current_thread() is threading.main_thread() and hasattr(signal, "SIGTERM"):
-            previous = signal.signal(signal.SIGTERM, _terminate)
-        try:
-            return func(*args, **kwargs)
-        except OddlingError as exc:
-            click.echo(f"Error: {exc}", err=True)
-            sys.exit(EXIT_BAD_INPUT)
-        except KeyboardInterrupt:
-            click.echo("Interrupted.", err=True)
-            sys.exit(130)
-        finally:
-            if previous is not None:
-                signal.signal(signal.SIGTERM, previous)
-
-    return wrapper
+from oddling.embedding.options import RunOptions
 
 
 def run_options(func):
@@ -130,14 +83,3 @@ target_fpr_override = click.option(
 def _options(cache_dir, runtime, batch_size, workers, no_cache, quiet, dask=None) -> RunOptions:
     return RunOptions(cache_dir=cache_dir, runtime=runtime, batch_size=batch_size, workers=workers,
                           progress=not quiet, use_cache=not no_cache, dask=dask or None)
-
-
-def _num(value, digits: int = 3) -> str:
-    """A metric for people: fixed decimals, or n/a where it is undefined (e.g. a CI from 1 sample)."""
-    return "n/a" if value is None else f"{value:.{digits}f}"
-
-
-def _print_json(data: dict) -> None:
-    click.echo(json.dumps(data, indent=2, sort_keys=True))
-
-
