@@ -38,8 +38,8 @@ def detector_options(func):
     options = [
         click.option("--representation", default=None,
                      help="Features to compare: BACKBONE (its embedding), BACKBONE/stages:S1+S2 (pooled stages), "
-                          "BACKBONE/patches:S1+S2 (patch grid), or pixels:SIZE[:rgb]  [default: the backbone's "
-                          "embedding; its patches for patch-knn]."),
+                          "BACKBONE/patches:S1+S2 (patch grid), pixels:SIZE[:rgb] or colour:GRID (local CIELAB "
+                          "statistics)  [default: the backbone's embedding; its patches for patch-knn]."),
         click.option("--backbone", default=None,
                      help=f"Backbone id from the manifest (see `oddling backbones list`) [default: {DEFAULT_BACKBONE}]."),
         click.option("--detector", type=click.Choice(list(DETECTORS)), default=DEFAULT_DETECTOR, show_default=True,
@@ -54,6 +54,12 @@ def detector_options(func):
     for option in reversed(options):
         func = option(func)
     return func
+
+
+frame_option = click.option(
+    "--frame", type=click.Choice(["stretch", "pad", "crop"]), default="stretch", show_default=True,
+    help="How an image meets the network's square input: stretch (every pixel in view), pad (aspect kept, "
+         "the rest filled), crop (the centre square, as banks of earlier releases: a border defect is cut away).")
 
 
 def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict:
@@ -77,6 +83,7 @@ def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict
 @click.option("--vector-dtype", type=click.Choice(["float32", "float16"]), default="float32", show_default=True,
               help="knn: store the reference vectors as float16 (half the disk and memory), refused unless it "
                    "moves scores by at most 1e-3, checked at fit (see README, Large collections).")
+@frame_option
 @calibration_options
 @click.option("--force", is_flag=True, help="Replace an existing bank.")
 @click.option("--json", "as_json", is_flag=True, help="Print a machine-readable summary to stdout.")
@@ -84,13 +91,13 @@ def _detector_params(detector: str, k, coreset, param_pairs, index=None) -> dict
 @run_options
 @user_errors
 def fit(reference_dir, bank_path, representation, backbone, detector, k, coreset, param_pairs, index, vector_dtype,
-        target_fpr, guarantee, confidence, allow_no_cutoff, force, as_json, **run):
+        frame, target_fpr, guarantee, confidence, allow_no_cutoff, force, as_json, **run):
     """Build a reference bank from REFERENCE_DIR, a folder of known-normal images."""
     refuse_existing(bank_path, force=force)
     bank = api.fit(reference_dir, bank_path, representation=representation, backbone=backbone, detector=detector,
                    params=_detector_params(detector, k, coreset, param_pairs, index), target_fpr=target_fpr,
                    guarantee=guarantee, confidence=confidence, allow_no_cutoff=allow_no_cutoff, force=force,
-                   vector_dtype=vector_dtype, options=_options(**run))
+                   vector_dtype=vector_dtype, frame=frame, options=_options(**run))
     info = api.bank_info(bank_path)
     if as_json:
         _print_json(info | {"n_skipped": len(bank.skipped), "skipped": bank.skipped[:100]})

@@ -101,7 +101,7 @@ def _prepare(path: Path, preprocessing: Preprocessing, cache: EmbeddingCache | N
     # The default backbones' resize is the health image itself: the statistics cost no resize.
     health = resized if is_health_resize(preprocessing, image.size) else health_image(image)
     stats = reduced_stats(health, *image.info[ORIGINAL_SIZE])
-    array = preprocessing.normalise(preprocessing.crop_centre(resized))
+    array = preprocessing.normalise(preprocessing.fit_frame(resized))
     return digest, array, np.array([stats[s] for s in STATS]), OK
 
 

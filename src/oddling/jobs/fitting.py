@@ -195,6 +195,7 @@ def fit(
     allow_no_cutoff: bool = False,
     force: bool = False,
     vector_dtype: str = "float32",
+    frame: str | None = None,
     options: RunOptions | None = None,
 ) -> Bank:
     """Build a reference bank from a folder of normal images (and save it if `bank_path` is given).
@@ -211,7 +212,9 @@ def fit(
     supports; a rate given that cannot flag anything is refused (OddlingError) unless
     `allow_no_cutoff`. `guarantee` "marginal" holds the rate on average over reference sets;
     "confident" holds it for this bank with probability `confidence` (default 0.9); see
-    `oddling.detectors.conformal`.
+    `oddling.detectors.conformal`. `frame`: how an image meets the network's square input,
+    "stretch" (the default: every pixel in view), "pad" or "crop" (the centre square, as banks
+    made before frames existed); see `oddling.data.preprocess`.
     """
     options = options or RunOptions()
     reference_dir = folder(reference_dir, "reference folder")
@@ -221,7 +224,7 @@ def fit(
             raise OddlingError(f"k applies to the knn detector, not {detector!r}")
         params["k"] = k
     model = make_detector(detector, params)
-    spec = resolve_representation(representation, backbone, detector)
+    spec = resolve_representation(representation, backbone, detector).framed(frame)
     check_pairing(spec, model)
     vector_dtype = check_vector_dtype(vector_dtype, spec, model)
     if target_fpr is not None:

@@ -114,7 +114,8 @@ def anomaly_map(bank: Bank, root: Path, row: ScoreRow, size: tuple[int, int] | N
         from oddling.data.intake import load_rgb
 
         size = load_rgb(root / row.path).size   # as decoded: EXIF orientation applied
-    return upsample_map(row.anomaly_grid, size, bank.representation["preprocessing"]["crop"])
+    preprocessing = bank.representation["preprocessing"]
+    return upsample_map(row.anomaly_grid, size, preprocessing["crop"], frame=preprocessing.get("frame", "crop"))
 
 
 SCORE_CHUNK = 4096   # queries per detector call (as oddling.index.base.QUERY_CHUNK): bounds each call's work

@@ -7,27 +7,36 @@ import numpy as np
 MAP_SIGMA = 4.0             # pixels of the network input (PatchCore smooths at this resolution too)
 
 
-def upsample_map(grid_map: np.ndarray, size: tuple[int, int], crop: int = 224, sigma: float = MAP_SIGMA) -> np.ndarray:
-    """Grid map -> (height, width) map of the analysed centre square at image resolution.
+def upsample_map(grid_map: np.ndarray, size: tuple[int, int], crop: int = 224, sigma: float = MAP_SIGMA,
+                 frame: str = "crop") -> np.ndarray:
+    """Grid map -> (height, width) map at image resolution, over what the network saw (`frame`, see
+    oddling.data.preprocess): the whole image ("stretch"), the whole image inside the square
+    ("pad"), or its centre square ("crop"; outside it nothing was analysed and the map is 0).
 
     Bilinear upsampling to the network input, Gaussian smoothing there (sigma in input pixels),
-    then resizing to the square's side in the image; outside that square (non-square images)
-    nothing was analysed and the map is 0.
+    then resizing to the image region the input showed.
     """
     import torch
     import torch.nn.functional as F
     from scipy.ndimage import gaussian_filter
 
+    def resized(array: np.ndarray, height: int, width: int) -> np.ndarray:
+        t = torch.from_numpy(np.ascontiguousarray(array, dtype=np.float32))[None, None]
+        return F.interpolate(t, size=(height, width), mode="bilinear", align_corners=False)[0, 0].numpy()
+
     width, height = size
-    t = torch.from_numpy(np.asarray(grid_map, dtype=np.float32))[None, None]
-    full = F.interpolate(t, size=(crop, crop), mode="bilinear", align_corners=False)[0, 0].numpy()
-    full = gaussian_filter(full, sigma=sigma, mode="nearest")
+    full = gaussian_filter(resized(grid_map, crop, crop), sigma=sigma, mode="nearest")
+    if frame == "stretch":
+        return resized(full, height, width)
+    if frame == "pad":
+        scale = crop / max(width, height)
+        inner_w, inner_h = max(1, round(width * scale)), max(1, round(height * scale))
+        left, top = (crop - inner_w) // 2, (crop - inner_h) // 2
+        return resized(full[top:top + inner_h, left:left + inner_w], height, width)
     side = min(width, height)
-    square = F.interpolate(torch.from_numpy(full)[None, None], size=(side, side), mode="bilinear",
-                           align_corners=False)[0, 0].numpy()
     out = np.zeros((height, width), dtype=np.float32)
     top, left = int(round((height - side) / 2.0)), int(round((width - side) / 2.0))
-    out[top:top + side, left:left + side] = square
+    out[top:top + side, left:left + side] = resized(full, side, side)
     return out
 
 

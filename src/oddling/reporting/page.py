@@ -227,7 +227,7 @@ def thumbnail_uri(path: Path, px: int) -> str | None:
     return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
-def heatmap_uri(path: Path, row: ScoreRow, crop: int, px: int, vmax: float) -> str | None:
+def heatmap_uri(path: Path, row: ScoreRow, crop: int, px: int, vmax: float, frame: str = "crop") -> str | None:
     """Local mode: a JPEG data URI of the image with its anomaly map over it, like the thumbnail."""
     from oddling.reporting.heatmaps import overlay, upsample_map
 
@@ -237,7 +237,8 @@ def heatmap_uri(path: Path, row: ScoreRow, crop: int, px: int, vmax: float) -> s
         return None
     image.thumbnail((px, px), Image.Resampling.LANCZOS)
     buffer = io.BytesIO()
-    overlay(image, upsample_map(row.anomaly_grid, image.size, crop), vmax).save(buffer, "JPEG", quality=_JPEG_QUALITY)
+    overlay(image, upsample_map(row.anomaly_grid, image.size, crop, frame=frame), vmax).save(
+        buffer, "JPEG", quality=_JPEG_QUALITY)
     return "data:image/jpeg;base64," + base64.b64encode(buffer.getvalue()).decode("ascii")
 
 
@@ -248,8 +249,9 @@ def _heatmaps(shown: list[ScoreRow], scored: list[ScoreRow], scored_root: Path, 
         return {}
     vmax = max(r.score for r in scored)
     crop = bank.representation["preprocessing"]["crop"]
+    frame = bank.representation["preprocessing"].get("frame", "crop")
     with ThreadPoolExecutor(max_workers=min(8, os.cpu_count() or 1)) as pool:
-        uris = pool.map(lambda r: heatmap_uri(scored_root / r.path, r, crop, px, vmax), with_maps)
+        uris = pool.map(lambda r: heatmap_uri(scored_root / r.path, r, crop, px, vmax, frame), with_maps)
         return dict(zip([r.path for r in with_maps], uris))
 
 
