@@ -271,3 +271,77 @@ def test_copies_do_not_count_toward_the_ten_of_each(tmp_path):
         f.unlink()
     with pytest.raises(OddlingError, match=r"\(9 and 13 distinct contents\); tune needs at least 10 of each"):
         oddling.tune(test, reference, tmp_path / "b", grid=[("pixels:16", "knn", {"k": 1})], options=OPTS)
+
+
+# --- without labelled defects: synthetic anomalies from held-out references ---------------------
+
+@pytest.fixture(scope="module")
+def unlabelled(tmp_path_factory):
+    from oddling.cli import main as cli
+
+    folders = digits_case(tmp_path_factory.mktemp("unlabelled"), n_reference=100)
+    out = tmp_path_factory.mktemp("tuned") / "u.bank"
+    run = CliRunner().invoke(cli, ["tune", "--reference", str(folders["reference"]), "--bank", str(out),
+                                   "--representation", "pixels:16", "--representation", "colour:4", "--json", "-q"])
+    assert run.exit_code == 0, run.output
+    return folders, out, json.loads(run.stdout)
+
+
+def test_without_a_labelled_folder_tune_chooses_on_synthetic_anomalies_and_says_so(unlabelled):
+    from oddling.data.synthetic import KINDS
+
+    folders, out, summary = unlabelled
+    assert summary["chosen_on"] == "synthetic anomalies" and "confirm" in summary["note"]
+    assert summary["n_held_out_references"] == 20                         # 20% of 100 distinct references
+    assert set(summary["leaderboard"][0]["per_kind_auroc"]) == set(KINDS)  # every kind judged on its own
+    bank = oddling.load_bank(out)
+    assert bank.tuning["chosen_on"] == "synthetic anomalies" and bank.size == 100   # the final bank: every reference
+    info = CliRunner().invoke(main, ["bank", "info", str(out)])
+    assert "chosen by `oddling tune` on synthetic anomalies" in info.output
+
+
+def test_the_held_out_references_are_in_no_candidates_bank(tmp_path, monkeypatch):
+    import oddling.jobs.tuning as tuning
+
+    folders = digits_case(tmp_path, n_reference=60)
+    fitted = []
+    original = tuning._embed_references
+    monkeypatch.setattr(tuning, "_embed_references", lambda paths, store, setting: (fitted.extend(paths), original(
+        paths, store, setting))[1])
+    result = oddling.tune(None, folders["reference"], None, representations=["pixels:16"], options=OPTS)
+    held = {folders["reference"] / name for name in result.held_out}
+    assert len(held) == 12 and fitted and not held & set(fitted)
+
+
+def test_synthetic_adds_its_anomalies_to_a_labelled_folder(digits, tmp_path):
+    folders, _ = digits
+    result = oddling.tune(folders["test"], folders["reference"], None, synthetic=True, representations=["pixels:16"],
+                          options=OPTS)
+    assert result.chosen_on == "labelled and synthetic anomalies"
+    kinds = set(result.chosen.per_kind)
+    assert {"cut-paste", "noise", "defect"} <= kinds          # the labelled folder's kind and the synthetic ones
+
+
+def test_too_few_references_to_hold_out_is_a_clear_error(tmp_path):
+    folders = digits_case(tmp_path, n_reference=25)
+    with pytest.raises(OddlingError, match="tune without labelled defects holds out 10 references"):
+        oddling.tune(None, folders["reference"], tmp_path / "b", representations=["pixels:16"], options=OPTS)
+    assert not (tmp_path / "b").exists()
+
+
+def test_the_race_stops_hopeless_candidates_early_and_confirms_on_the_whole_choosing_half(digits, monkeypatch):
+    import oddling.jobs.tuning as tuning
+
+    folders, _ = digits
+    monkeypatch.setattr(tuning, "MIN_ROUND_REFERENCES", 20)
+    monkeypatch.setattr(tuning, "MIN_ROUND_PER_CLASS", 5)
+    result = oddling.tune(folders["test"], folders["reference"], None, representations=["pixels:16", "pixels:8"],
+                          options=OPTS)
+    assert result.rounds >= 2
+    stopped = [t for t in result.leaderboard if t.status.startswith("stopped after round")]
+    finalists = [t for t in result.leaderboard if t.rounds == result.rounds]
+    assert stopped and finalists and result.chosen in finalists
+    assert len(finalists) <= (len(result.leaderboard) + 1) // 2
+    full = oddling.tune(folders["test"], folders["reference"], None, representations=["pixels:16", "pixels:8"],
+                        race=False, options=OPTS)
+    assert full.rounds == 1 and all(t.rounds == 1 for t in full.leaderboard)

@@ -104,6 +104,7 @@ class Bank:
     skipped: list[dict] = field(default_factory=list)
     formats: dict = field(default_factory=dict)   # optional: the references' file formats (data.encoding.format_summary)
     vector_check: dict = field(default_factory=dict)
+    tuning: dict = field(default_factory=dict)   # made by `tune`: what the configuration was chosen on
     path: Path | None = None
     format_version: int = FORMAT_VERSION
 
@@ -152,7 +153,8 @@ class Bank:
             "skipped": self.skipped,
             "formats": self.formats,
             "vector_dtype": self.vector_dtype,
-        } | ({"vector_check": self.vector_check} if self.vector_check else {})
+        } | ({"vector_check": self.vector_check} if self.vector_check else {}) | (
+            {"tuning": self.tuning} if self.tuning else {})
 
 
 _held: dict[str, list] = {}          # lock file -> [threading.RLock, file descriptor or None, depth]
@@ -573,6 +575,7 @@ def load_bank(path: str | os.PathLike, *, memory_map: bool = True) -> Bank:
         skipped=f.get("skipped", list, [], required=False), path=folder, format_version=version,
         formats=f.get("formats", dict, {}, required=False),
         vector_check=f.get("vector_check", dict, {}, required=False),
+        tuning=f.get("tuning", dict, {}, required=False),
     )
 
 

@@ -304,61 +304,90 @@ def report(folder, bank_path, log_path, since, until, last, out_html, labelled, 
 
 
 @click.command()
-@click.argument("test_dir", type=click.Path(exists=True, file_okay=False, path_type=Path))
+@click.argument("test_dir", required=False, type=click.Path(exists=True, file_okay=False, path_type=Path))
 @click.option("--reference", "reference_dir", required=True, type=click.Path(exists=True, file_okay=False, path_type=Path),
               help="Folder of known-normal images every configuration is fitted on.")
 @click.option("--bank", "bank_path", required=True, type=click.Path(path_type=Path),
               help="Folder to write the chosen configuration's bank into; the leaderboard goes beside it.")
+@click.option("--synthetic", is_flag=True,
+              help="With TEST_DIR: judge on synthetic anomalies too (made from held-out references). Without "
+                   "TEST_DIR they are all there is.")
 @click.option("--labels", "labels_csv", type=click.Path(exists=True, dir_okay=False, path_type=Path), default=None,
               help="CSV with path,label instead of class subfolders.")
 @click.option("--normal-label", "normal_labels", multiple=True, default=("normal",), show_default=True,
               help="Subfolder name that holds normal images (repeatable).")
 @click.option("--representation", "representations", multiple=True,
               help="Representation to try (repeatable) [default: a grid of EfficientNet-Lite0 embedding, pooled "
-                   "stages, patches, and pixels:32].")
+                   "stages, patches, pixels:32 and colour:8].")
 @click.option("--budget", "budget_minutes", type=click.FloatRange(min=0, min_open=True), default=None,
-              help="Stop trying new representations after this many minutes; keep the best so far.")
+              help="Minutes the whole run may take: the race stops before a step that would overrun it and "
+                   "keeps the best so far.")
+@frame_option
 @calibration_options
-@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the choose / hold-out split.")
+@click.option("--seed", type=int, default=0, show_default=True, help="Seed of the splits and synthetic anomalies.")
 @click.option("--json", "as_json", is_flag=True, help="Print the chosen configuration and leaderboard as JSON.")
 @click.option("--force", is_flag=True, help="Replace an existing bank and leaderboard.")
 @run_options
 @user_errors
-def tune(test_dir, reference_dir, bank_path, labels_csv, normal_labels, representations, budget_minutes, target_fpr,
-         guarantee, confidence, allow_no_cutoff, seed, as_json, force, **run):
-    """Find the representation and detector that best separate the labelled images in TEST_DIR.
+def tune(test_dir, reference_dir, bank_path, synthetic, labels_csv, normal_labels, representations, budget_minutes,
+         frame, target_fpr, guarantee, confidence, allow_no_cutoff, seed, as_json, force, **run):
+    """Find the representation and detector that best tell normal images from anomalies.
 
-    Embeds on this machine (there is no --dask here: it times each representation on it)."""
-    result = api.tune(test_dir, reference_dir, bank_path, labels_csv=labels_csv, normal_labels=tuple(normal_labels),
-                      representations=list(representations) or None, budget_minutes=budget_minutes,
-                      target_fpr=target_fpr, guarantee=guarantee, confidence=confidence,
-                      allow_no_cutoff=allow_no_cutoff, seed=seed, force=force, options=_options(**run))
+    With TEST_DIR, a labelled folder (as `evaluate` reads it), its anomalies decide; without it,
+    synthetic anomalies made from a held-out share of the references (not your defects: confirm
+    with `oddling evaluate` once labelled examples exist). Embeds on this machine (there is no
+    --dask here: it times each representation on it)."""
+    if test_dir is None and synthetic:
+        raise OddlingError("--synthetic adds synthetic anomalies to a labelled TEST_DIR; without TEST_DIR they are "
+                           "used anyway")
+    result = api.tune(test_dir, reference_dir, bank_path, synthetic=synthetic, labels_csv=labels_csv,
+                      normal_labels=tuple(normal_labels), representations=list(representations) or None,
+                      budget_minutes=budget_minutes, frame=frame, target_fpr=target_fpr, guarantee=guarantee,
+                      confidence=confidence, allow_no_cutoff=allow_no_cutoff, seed=seed, force=force,
+                      options=_options(**run))
     summary = result.summary()
     for note in result.notes:
         click.echo(f"warning: {note}", err=True)
     if as_json:
         _print_json(summary)
         return
-    chosen = result.chosen
-    click.echo(f"{'rank':>4}  {'AUROC':>6}  {'95% CI':>13}  {'ms/img':>7}  configuration")
+    click.echo(leaderboard_text(result))
+    click.echo(tune_summary(result, summary, bank_path), err=True)
+
+
+def leaderboard_text(result) -> str:
+    """The leaderboard for stdout, a line per configuration, best first."""
+    lines = [f"{'rank':>4}  {'AUROC':>6}  {'95% CI':>13}  {'ms/img':>7}  configuration"]
     for i, t in enumerate(result.leaderboard, 1):
-        if t.auroc is None:
-            click.echo(f"{i:>4}  {'-':>6}  {'':>13}  {'':>7}  {t.representation} | {t.detector} {t.params}: {t.status}")
+        if t.auroc is None or t.auroc_ci95 is None:
+            lines.append(f"{i:>4}  {'-':>6}  {'':>13}  {'':>7}  {t.representation} | {t.detector} {t.params}: "
+                         f"{t.status}")
             continue
         low, high = t.auroc_ci95
-        click.echo(f"{i:>4}  {t.auroc:6.3f}  {low:6.3f}-{high:6.3f}  {t.ms_per_image:7.1f}  "
-                   f"{t.representation} | {t.detector} {t.params}"
-                   + ("  (cannot flag at the target rate)" if t.supports_target is False else ""))
-    cal = chosen.bank.calibration
-    click.echo(
-        f"\nChosen: {chosen.representation} | {chosen.detector} {chosen.params}\n"
+        note = "  (cannot flag at the target rate)" if t.supports_target is False else ""
+        if t.status != "ok":
+            note += f"  ({t.status})"
+        lines.append(f"{i:>4}  {t.auroc:6.3f}  {low:6.3f}-{high:6.3f}  {t.ms_per_image:7.1f}  "
+                     f"{t.representation} | {t.detector} {t.params}{note}")
+    return "\n".join(lines)
+
+
+def tune_summary(result, summary: dict, bank_path) -> str:
+    """What tune says on stderr after the leaderboard: the choice, its bank and how it was judged."""
+    chosen, cal = result.chosen, result.chosen.bank.calibration
+    kinds = ", ".join(f"{k} {_num(v)}" for k, v in sorted(result.holdout_per_kind.items()))
+    synthetic = "synthetic" in result.chosen_on
+    return (
+        f"\nChosen on {result.chosen_on}: {chosen.representation} | {chosen.detector} {chosen.params}\n"
         f"  cutoff {'none' if cal['cutoff'] is None else _num(cal['cutoff'], 4)} at target false-alarm rate "
         f"{cal['target_fpr']:g} ({cal['promise']})" + (f"; {cal['note']}" if cal.get("note") else "") + "\n"
         f"  AUROC on the held-out half ({result.n_holdout['normal']} normal, {result.n_holdout['anomalous']} "
-        f"anomalous): {_num(result.holdout_auroc)}\n"
+        f"anomalous): {_num(result.holdout_auroc)}" + (f"; by kind: {kinds}" if kinds else "") + "\n"
         f"  The leaderboard's AUROCs come from the half used to choose ({result.n_choose['normal']} normal, "
         f"{result.n_choose['anomalous']} anomalous): the best of them is optimistic.\n"
-        f"  Bank: {bank_path}; leaderboard: {result.files['leaderboard_csv']}\n"
-        f"  Reproduce: {chosen.fit_command()}"
+        + ("  Synthetic anomalies are not your defects: confirm the choice with `oddling evaluate` once labelled "
+           "examples exist.\n" if synthetic else "")
+        + f"  Bank: {bank_path}; leaderboard: {result.files['leaderboard_csv']}\n"
+        f"  Reproduce: {summary['chosen']['fit_command']}"
         + ("\n  Stopped early: the budget ran out before every configuration was tried." if result.stopped_early
-           else ""), err=True)
+           else ""))

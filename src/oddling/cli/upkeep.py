@@ -135,7 +135,9 @@ def bank_info(bank_path, as_json):
         f"rate {cal['target_fpr']}\n  promise    {info['promise']}\n  {info['supported_rates']}\n"
         f"  vectors    {info['vector_dtype']}"
         + (f" (scores moved by at most {info['vector_check']['max_score_difference']:.2g} on "
-           f"{info['vector_check']['n_checked']} references, checked at fit)" if info.get("vector_check") else ""))
+           f"{info['vector_check']['n_checked']} references, checked at fit)" if info.get("vector_check") else "")
+        + (f"\n  tuning     chosen by `oddling tune` on {info['tuning']['chosen_on']} (AUROC "
+           f"{info['tuning'].get('auroc')} on the choosing half)" if info.get("tuning") else ""))
 
 
 @bank_group.command("add")

@@ -283,7 +283,7 @@ def bank_info(bank_path: str | os.PathLike) -> dict:
         "supported_rates": supported_rate_text(n_cal, bank.guarantee), "vector_dtype": bank.vector_dtype,
         "guarantee": bank.guarantee.kind, "can_flag": threshold.can_flag,
         "promise": threshold.describe() if threshold.can_flag else f"none: {threshold.support_text()}",
-        "vector_check": bank.vector_check}
+        "vector_check": bank.vector_check, "tuning": bank.tuning}
 
 
 def audit(bank: Bank | str | os.PathLike, *, near_duplicate_factor: float | None = None,

@@ -113,8 +113,9 @@ def plot_leaderboard(entries: list[dict], holdout_auroc: float | None, path: str
     fig, ax = plt.subplots(figsize=(8, 0.35 * len(shown) + 1.6))
     names = [f"{e['representation']} | {e['detector']} {_params(e['params'])}" for e in shown]
     values = [e["auroc"] for e in shown]
-    low = [e["auroc"] - (e["auroc_ci95"] or [e["auroc"]])[0] for e in shown]
-    high = [(e["auroc_ci95"] or [0, e["auroc"]])[1] - e["auroc"] for e in shown]
+    # (the interval counts distinct contents: with many copies the all-files AUROC can sit outside it)
+    low = [max(0.0, e["auroc"] - (e["auroc_ci95"] or [e["auroc"]])[0]) for e in shown]
+    high = [max(0.0, (e["auroc_ci95"] or [0, e["auroc"]])[1] - e["auroc"]) for e in shown]
     ax.barh(range(len(shown)), values, xerr=[low, high], color="#4c72b0", alpha=0.8, capsize=2)
     ax.set_yticks(range(len(shown)), names, fontsize=7)
     ax.set_xlim(max(0.0, min(values + [0.5]) - 0.05), 1.0)
