@@ -31,17 +31,6 @@ from oddling.evaluation.metrics import auroc  # noqa: E402
 from tune_cases import CASES  # noqa: E402
 
 
-def default_holdout(result) -> float | None:
-    """AUROC on the held-out half of the default configuration's scores (same images as holdout_auroc)."""
-    for t in result.leaderboard:
-        if (t.representation, t.detector, t.params) == ("efficientnet-lite0", "knn", {"k": 5}) and t.scores is not None:
-            labels = result.labels
-            held = ~result.choose   # the halves tune drew (by content: copies stay together)
-            y = labels[t.readable][held[t.readable]]
-            return auroc(y, t.scores[held[t.readable]])
-    return None
-
-
 def holdout_of_bank(bank, test: Path, result) -> float:
     """AUROC of a bank's scores on the labelled tune's held-out half (by relative path)."""
     held = {name for name, inside in zip(result.names, result.choose) if not inside}
@@ -78,10 +67,11 @@ def main() -> None:
             blind = oddling.tune(None, folders["reference"], Path(tmp) / f"{name}.synthetic.bank", options=options)
             blind_s = time.perf_counter() - start
             blind_auc = holdout_of_bank(blind.chosen.bank, folders["test"], result)
-            default = default_holdout(result)
+            default_bank = oddling.fit(folders["reference"], None, options=options)   # the default `oddling fit`
+            default = holdout_of_bank(default_bank, folders["test"], result)
             line = (f"| {name} | {describe(result.chosen)} | {result.holdout_auroc:.3f} | {labelled_s:.0f} s | "
                     f"{describe(blind.chosen)} | {blind_auc:.3f} | {blind_s:.0f} s | "
-                    f"{'n/a' if default is None else f'{default:.3f}'} | {len(result.leaderboard)} |")
+                    f"{default:.3f} | {len(result.leaderboard)} |")
             print(line, flush=True)
             lines.append(line)
     text = "\n".join(lines) + "\n"

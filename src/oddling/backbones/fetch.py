@@ -155,66 +155,99 @@ def download(url: str, partial: Path, expected_size: int | None = None, progress
     opener = urllib.request.build_opener()
     for _ in range(attempts):
         offset = partial.stat().st_size if partial.exists() else 0
-        headers = {"User-Agent": "oddling", "Accept-Encoding": "identity"}
-        if offset:
-            headers["Range"] = f"bytes={offset}-"
-            if info.get("validator"):
-                headers["If-Range"] = info["validator"]
         try:
-            response = opener.open(urllib.request.Request(url, headers=headers), timeout=timeout)
+            response = opener.open(urllib.request.Request(url, headers=_headers(offset, info)), timeout=timeout)
         except urllib.error.HTTPError as exc:
-            with exc:
-                if exc.code == 416 and offset:   # nothing left to send from there
-                    total = _content_range(exc.headers.get("Content-Range"))[2]
-                    if total == offset:
-                        return kept
-                    partial.unlink()
-                    kept, problem = 0, f"the server refused to resume at byte {offset}"
-                    continue
-            raise OddlingError(f"downloading {url} failed: HTTP {exc.code} {exc.reason}") from None
+            if _resume_refused(exc, url, partial, offset):
+                return kept                      # the file was complete already
+            kept, problem = 0, f"the server refused to resume at byte {offset}"
+            continue
         except (urllib.error.URLError, http.client.HTTPException, OSError) as exc:
             problem = f"cannot reach {urlsplit(url).netloc}: {_describe(exc)}"
             continue
         with response:
-            if response.status == 206:
-                start, _, total = _content_range(response.headers.get("Content-Range"))
-                if start != offset:
-                    partial.unlink(missing_ok=True)
-                    kept, problem = 0, f"the server answered a resume at byte {offset} from byte {start}"
-                    continue
-                mode = "ab"
-            else:             # the whole file: the server ignored the range, or the file changed
-                if offset:
-                    kept = 0
-                offset, mode = 0, "wb"
-                length = response.headers.get("Content-Length")
-                total = int(length) if length and length.isdigit() else None
-            if expected_size is not None and total is not None and total != int(expected_size):
-                partial.unlink(missing_ok=True)
-                _info_path(partial).unlink(missing_ok=True)
-                raise OddlingError(f"{url} is {total} bytes, but the manifest says the file has {expected_size}; "
-                                   "not the right file")
-            etag = response.headers.get("ETag")
-            validator = etag if etag and not etag.startswith("W/") else response.headers.get("Last-Modified")
-            info = {"url": url, "validator": validator, "total": total}
-            _write_info(partial, info)
-            broken = _stream(response, partial, mode, offset, total, progress)
-        size = partial.stat().st_size
+            received = _receive(response, url, partial, offset, expected_size, progress)
+        if received.restarted:
+            kept = 0
+        if received.retry is not None:
+            problem = received.retry
+            continue
+        info = received.info
+        size, total = partial.stat().st_size, received.total
         if total is not None and size > total:
             partial.unlink()
             _info_path(partial).unlink(missing_ok=True)
             raise OddlingError(f"{url} sent {size} bytes, more than the {total} it announced; download discarded")
-        if total is None and broken is None:
+        if (total is None and received.broken is None) or (total is not None and size == total):
             return kept
-        if total is not None and size == total:
-            return kept
-        problem = broken or f"the connection closed after {size} of {total} bytes"
+        problem = received.broken or f"the connection closed after {size} of {total} bytes"
+    raise OddlingError(_incomplete_message(url, partial, attempts, problem))
+
+
+def _headers(offset: int, info: dict) -> dict:
+    headers = {"User-Agent": "oddling", "Accept-Encoding": "identity"}
+    if offset:
+        headers["Range"] = f"bytes={offset}-"
+        if info.get("validator"):
+            headers["If-Range"] = info["validator"]
+    return headers
+
+
+def _resume_refused(exc: urllib.error.HTTPError, url: str, partial: Path, offset: int) -> bool:
+    """An HTTP error answering a request: True when a 416 says the partial file is whole already;
+    False (the partial file removed) when the server cannot resume from it; any other error raises."""
+    with exc:
+        if exc.code == 416 and offset:   # nothing left to send from there
+            if _content_range(exc.headers.get("Content-Range"))[2] == offset:
+                return True
+            partial.unlink()
+            return False
+    raise OddlingError(f"downloading {url} failed: HTTP {exc.code} {exc.reason}") from None
+
+
+@dataclass
+class _Received:
+    info: dict | None = None
+    total: int | None = None
+    broken: str | None = None      # why the stream stopped early, if it did
+    restarted: bool = False        # the bytes of an earlier run were dropped
+    retry: str | None = None       # connect again, for this reason
+
+
+def _receive(response, url: str, partial: Path, offset: int, expected_size: int | None, progress: bool) -> _Received:
+    """Write what one response sends into `partial` (appending to a resume, or from the start)."""
+    restarted = False
+    if response.status == 206:
+        start, _, total = _content_range(response.headers.get("Content-Range"))
+        if start != offset:
+            partial.unlink(missing_ok=True)
+            return _Received(restarted=True, retry=f"the server answered a resume at byte {offset} from byte {start}")
+        mode = "ab"
+    else:             # the whole file: the server ignored the range, or the file changed
+        restarted = bool(offset)
+        offset, mode = 0, "wb"
+        length = response.headers.get("Content-Length")
+        total = int(length) if length and length.isdigit() else None
+    if expected_size is not None and total is not None and total != int(expected_size):
+        partial.unlink(missing_ok=True)
+        _info_path(partial).unlink(missing_ok=True)
+        raise OddlingError(f"{url} is {total} bytes, but the manifest says the file has {expected_size}; "
+                           "not the right file")
+    etag = response.headers.get("ETag")
+    validator = etag if etag and not etag.startswith("W/") else response.headers.get("Last-Modified")
+    info = {"url": url, "validator": validator, "total": total}
+    _write_info(partial, info)
+    broken = _stream(response, partial, mode, offset, total, progress)
+    return _Received(info, total, broken, restarted)
+
+
+def _incomplete_message(url: str, partial: Path, attempts: int, problem: str | None) -> str:
     size = partial.stat().st_size if partial.exists() else 0
     if not size:
-        raise OddlingError(f"downloading {url} failed after {attempts} attempts ({problem}); check the URL, the "
-                           "network and the proxy variables (HTTPS_PROXY, HTTP_PROXY, NO_PROXY)")
-    raise OddlingError(f"downloading {url} did not complete after {attempts} attempts ({problem}); "
-                       f"{size} bytes are kept in {partial}: run the same command again to resume")
+        return (f"downloading {url} failed after {attempts} attempts ({problem}); check the URL, the network and "
+                "the proxy variables (HTTPS_PROXY, HTTP_PROXY, NO_PROXY)")
+    return (f"downloading {url} did not complete after {attempts} attempts ({problem}); {size} bytes are kept in "
+            f"{partial}: run the same command again to resume")
 
 
 def _stream(response, partial: Path, mode: str, offset: int, total: int | None, progress: bool) -> str | None:
